@@ -1,0 +1,356 @@
+"""Backend ``scipy``: one process, scipy.sparse storage, SuperLU and ARPACK, LAPACK for small N.
+
+Methods for the slowest modes:
+
+* ``dense``: full LAPACK eigendecomposition (``numpy.linalg.eig``); every eigenvalue is
+  computed, so the slowest set is complete by construction.
+* ``shift-invert``: sparse LU of ``W - sigma I`` (SuperLU, COLAMD ordering) and ARPACK's
+  implicitly restarted Arnoldi on ``(W - sigma I)^{-1}`` (Lehoucq, Sorensen and Yang 1998,
+  ARPACK Users' Guide, ch. 4.2 shift-invert mode). ARPACK returns the eigenvalues nearest
+  ``sigma``; the search is widened until :mod:`pipeline.backends.completeness` proves that no
+  eigenvalue of larger real part lies outside the searched disk, or ``max_search`` is hit (then
+  the result says it is not certified).
+
+The shift is ``sigma = +1e-9 * max exit rate``: just right of the stationary eigenvalue 0, so
+``W - sigma I`` is non-singular for conserving generators and the disk is centred on the
+slow end of the spectrum.
+
+Stationary distribution: inverse iteration with the same LU (each step shrinks every other
+component by ``sigma / |lambda|``), or a dense solve with one equation replaced by the
+normalization for small N.
+"""
+
+from __future__ import annotations
+
+import os
+import time
+from typing import Any
+
+import numpy as np
+import scipy.sparse as sp
+import scipy.sparse.linalg as spla
+
+from pipeline.backends.base import Backend, Modes, Operator, Stationary, check_column_sums
+from pipeline.backends.completeness import SpectrumEnclosure, farthest_enclosed_distance
+from pipeline.errors import BackendError, SolverError
+from pipeline.models.base import Model, validate_block
+from pipeline.modes import grouping_tolerance, take_slowest
+from pipeline.progress import Progress, log
+
+__all__ = ["ScipyBackend", "mpi_world_size"]
+
+SHIFT_FACTOR = 1e-9
+DENSE_MEMORY_LIMIT = 8 * 2**30  # bytes a dense solve may take before we refuse
+RESIDUAL_CEILING = 1e-6  # above this a mode is not trusted for the certificate
+
+
+def mpi_world_size() -> int:
+    """Ranks of the MPI job this process belongs to (1 when not started by mpiexec/srun)."""
+    for name in ("OMPI_COMM_WORLD_SIZE", "PMI_SIZE", "PMIX_SIZE", "MPI_LOCALNRANKS"):
+        value = os.environ.get(name)
+        if value and value.isdigit():
+            return int(value)
+    return 1
+
+
+class ScipyBackend(Backend):
+    name = "scipy"
+    description = "one process: scipy.sparse, SuperLU, ARPACK; LAPACK for small problems"
+    block_rows = 1 << 17
+
+    @classmethod
+    def unavailable_reason(cls) -> str | None:
+        ranks = mpi_world_size()
+        if ranks > 1:
+            return (f"solve.backend: 'scipy' runs on one process but {ranks} MPI ranks were "
+                    "started; run without mpiexec or choose a distributed backend")
+        return None
+
+    # -- assembly ------------------------------------------------------------------------
+
+    def assemble(self, model: Model) -> Operator:
+        """Concatenate the model's row blocks into one CSR matrix (preallocated, no copies
+        of the whole matrix) and check every block and the column sums."""
+        reason = self.unavailable_reason()
+        if reason:
+            raise BackendError(reason)
+        started = time.perf_counter()
+        n = model.n_states
+        bound = model.nnz_upper_bound(0, n)
+        indptr = np.zeros(n + 1, dtype=np.int64)
+        indices: np.ndarray | None = None
+        data = np.empty(bound, dtype=np.float64)
+        filled = 0
+        with Progress(n, "assemble") as progress:
+            for start in range(0, n, self.block_rows):
+                stop = min(start + self.block_rows, n)
+                block = model.row_block(start, stop)
+                validate_block(block, n)
+                if indices is None:
+                    indices = np.empty(bound, dtype=block.indices.dtype)
+                count = block.nnz
+                indices[filled : filled + count] = block.indices
+                data[filled : filled + count] = block.data
+                indptr[start + 1 : stop + 1] = block.indptr[1:] + filled
+                filled += count
+                progress.advance(stop - start)
+        indices = indices[:filled]
+        data = data[:filled]
+        W = sp.csr_matrix((data, indices, indptr), shape=(n, n))
+        column_sums = np.bincount(W.indices, weights=W.data, minlength=n)
+        column_abs = np.bincount(W.indices, weights=np.abs(W.data), minlength=n)
+        diagonal = W.diagonal()
+        check = check_column_sums(column_sums, diagonal, model.conserving,
+                                  float(column_abs.max(initial=0.0)))
+        seconds = time.perf_counter() - started
+        info = {
+            "index_dtype": str(W.indices.dtype),
+            "matrix_bytes": int(W.data.nbytes + W.indices.nbytes + W.indptr.nbytes),
+            "block_rows": self.block_rows,
+        }
+        operator = Operator(model, n, int(W.nnz), check, seconds, handle={"W": W}, info=info)
+        operator.handle["column_abs"] = column_abs
+        return operator
+
+    # -- slowest modes -----------------------------------------------------------------
+
+    def slowest_modes(
+        self,
+        operator: Operator,
+        count: int,
+        *,
+        method: str = "auto",
+        tolerance: float = 1e-12,
+        vectors: bool = False,
+        dense_limit: int = 1024,
+        max_search: int = 400,
+    ) -> Modes:
+        n = operator.n_states
+        count = min(count, n)
+        if method == "auto":
+            method = "dense" if n <= dense_limit else "shift-invert"
+        if method == "shift-invert" and count > n - 2:
+            log(f"solve: {count} modes of {n} states exceed what Arnoldi returns; using dense")
+            method = "dense"
+        if method == "dense":
+            return self._dense_modes(operator, count, vectors)
+        return self._shift_invert_modes(operator, count, tolerance, vectors, max_search)
+
+    def _dense_modes(self, operator: Operator, count: int, want_vectors: bool) -> Modes:
+        n = operator.n_states
+        needed = 40 * n * n
+        if needed > DENSE_MEMORY_LIMIT:
+            raise SolverError(
+                f"solve.method: 'dense' on {n} states needs about {needed / 2**30:.0f} GiB; "
+                "use method = 'shift-invert'"
+            )
+        started = time.perf_counter()
+        W = operator.handle["W"]
+        values, vectors = np.linalg.eig(W.toarray())
+        scale = operator.check.norm1
+        chosen, group_complete = take_slowest(values, count, grouping_tolerance(values, scale))
+        values, vectors = values[chosen], _normalize_columns(vectors[:, chosen])
+        residuals = _residuals(W, values, vectors, scale)
+        certificate = {"kind": "dense", "note": f"all {n} eigenvalues computed (LAPACK geev)"}
+        return Modes(
+            values=values.astype(np.complex128),
+            residuals=residuals,
+            vectors=vectors if want_vectors else None,
+            method="dense (numpy.linalg.eig, LAPACK geev)",
+            certified=True,
+            certificate=certificate,
+            group_complete=group_complete,
+            seconds=time.perf_counter() - started,
+            info={"searched": n},
+        )
+
+    def _factorize(self, operator: Operator) -> tuple[float, Any]:
+        """LU of ``W - sigma I`` (cached on the operator)."""
+        cached = operator.handle.get("lu")
+        if cached is not None:
+            return cached
+        started = time.perf_counter()
+        W = operator.handle["W"]
+        shift = SHIFT_FACTOR * max(operator.check.max_exit_rate, np.finfo(float).tiny)
+        shifted = (W - shift * sp.identity(operator.n_states, format="csr")).tocsc()
+        try:
+            lu = spla.splu(shifted, permc_spec="COLAMD")
+        except MemoryError:
+            raise SolverError(
+                "solve: the sparse LU of W does not fit in memory; use fewer states or a "
+                "distributed backend"
+            ) from None
+        fill = (lu.L.nnz + lu.U.nnz) / max(W.nnz, 1)
+        log(f"solve: LU of W - {shift:.2e} I in {time.perf_counter() - started:.1f} s "
+            f"(fill-in x{fill:.1f})")
+        operator.handle["lu"] = (shift, lu)
+        operator.info["lu_fill_ratio"] = float(fill)
+        return shift, lu
+
+    def _enclosure(self, operator: Operator) -> SpectrumEnclosure:
+        W = operator.handle["W"]
+        diagonal = W.diagonal()
+        radii = operator.handle["column_abs"] - np.abs(diagonal)
+        skew = (W - W.T).tocsr()
+        imag_bound = 0.5 * float(np.bincount(skew.indices, weights=np.abs(skew.data),
+                                             minlength=operator.n_states).max(initial=0.0))
+        return SpectrumEnclosure(diagonal, np.clip(radii, 0, None), imag_bound).compact()
+
+    def _shift_invert_modes(
+        self, operator: Operator, count: int, tolerance: float, want_vectors: bool,
+        max_search: int,
+    ) -> Modes:
+        started = time.perf_counter()
+        n = operator.n_states
+        W = operator.handle["W"]
+        scale = operator.check.norm1
+        shift, lu = self._factorize(operator)
+        solve_count = {"n": 0}
+
+        def apply_inverse(x: np.ndarray) -> np.ndarray:
+            solve_count["n"] += 1
+            return lu.solve(np.asarray(x, dtype=np.float64))
+
+        inverse = spla.LinearOperator((n, n), matvec=apply_inverse, dtype=np.float64)
+        enclosure = self._enclosure(operator)
+        cap = max(min(max_search, n - 2), count)
+        search = min(max(2 * count + 8, 24), cap)
+        rounds = []
+        while True:
+            values, vectors, converged = _arpack_nearest(W, inverse, shift, search, tolerance)
+            values = _rayleigh_quotients(W, vectors)
+            vectors = _normalize_columns(vectors)
+            residuals = _residuals(W, values, vectors, scale)
+            radius = float(np.abs(values - shift).max(initial=0.0))
+            chosen, group_complete = take_slowest(values, count,
+                                                  grouping_tolerance(values, scale))
+            threshold = float(values[chosen[-1]].real)
+            required = farthest_enclosed_distance(enclosure, shift, threshold)
+            trusted = converged and bool(residuals.max(initial=0.0) <= RESIDUAL_CEILING)
+            certified = trusted and required < radius * (1 - 1e-9)
+            rounds.append({"searched": int(values.size), "radius": radius,
+                           "required_radius": required, "converged": bool(converged)})
+            log(f"solve: searched the {values.size} eigenvalues nearest {shift:.2e}: disk "
+                f"radius {radius:.3e}, certificate needs {required:.3e}")
+            if certified or search >= cap or not converged:
+                break
+            search = min(2 * search, cap)
+        if certified:
+            note = ("every eigenvalue with real part >= the last mode lies inside the searched "
+                    "disk (Gershgorin/Bendixson enclosure)")
+        elif not converged:
+            note = "ARPACK did not converge; the set may miss slower modes"
+        else:
+            note = (f"NOT CERTIFIED: the searched disk (radius {radius:.3e}) does not cover the "
+                    f"spectrum enclosure up to real part {threshold:.3e} (needs {required:.3e}); "
+                    "slower modes with large imaginary parts may be missing; raise "
+                    "solve.max_search")
+        certificate = {
+            "kind": "shift-invert disk + Gershgorin/Bendixson enclosure",
+            "shift": shift,
+            "radius": radius,
+            "required_radius": required,
+            "imag_bound": enclosure.imag_bound,
+            "rounds": rounds,
+            "note": note,
+        }
+        values, vectors, residuals = values[chosen], vectors[:, chosen], residuals[chosen]
+        return Modes(
+            values=values.astype(np.complex128),
+            residuals=residuals,
+            vectors=vectors if want_vectors else None,
+            method="shift-invert Arnoldi (ARPACK) with SuperLU, widened until certified",
+            certified=certified,
+            certificate=certificate,
+            group_complete=group_complete,
+            seconds=time.perf_counter() - started,
+            info={"searched": rounds[-1]["searched"], "inner_solves": solve_count["n"],
+                  "lu_fill_ratio": operator.info.get("lu_fill_ratio")},
+        )
+
+    # -- stationary distribution --------------------------------------------------------
+
+    def stationary(self, operator: Operator, dense_limit: int = 1024) -> Stationary:
+        if not operator.check.conserving:
+            raise SolverError("solve.stationary: W is a sub-generator (probability leaks "
+                              "out), so there is no stationary distribution; set it to false")
+        started = time.perf_counter()
+        W = operator.handle["W"]
+        n = operator.n_states
+        if n <= dense_limit and "lu" not in operator.handle:
+            # Replace the last balance equation by the normalization sum(p) = 1 (common practice).
+            A = W.toarray()
+            A[-1, :] = 1.0
+            rhs = np.zeros(n)
+            rhs[-1] = 1.0
+            try:
+                p = np.linalg.solve(A, rhs)
+            except np.linalg.LinAlgError:
+                raise SolverError("solve.stationary: the stationary distribution is not "
+                                  "unique (W has several closed classes)") from None
+            method, steps = "dense solve with the normalization row", 0
+        else:
+            shift, lu = self._factorize(operator)
+            p = np.full(n, 1.0 / n)
+            steps = 0
+            while steps < 6:
+                steps += 1
+                p = lu.solve(p)
+                p /= p.sum()
+                if _stationary_residual(W, p, operator.check.norm1) < 1e-14:
+                    break
+            method = f"inverse iteration with the LU of W - {shift:.2e} I"
+        negative_mass = float(-p[p < 0].sum()) + 0.0
+        p = np.clip(p, 0.0, None)
+        p /= p.sum()
+        residual = _stationary_residual(W, p, operator.check.norm1)
+        return Stationary(p, residual, negative_mass, method, time.perf_counter() - started,
+                          info={"iterations": steps})
+
+
+def _arpack_nearest(
+    W: sp.csr_matrix, inverse: spla.LinearOperator, shift: float, count: int, tolerance: float
+) -> tuple[np.ndarray, np.ndarray, bool]:
+    """ARPACK shift-invert: the ``count`` eigenpairs nearest ``shift``; ``converged`` flag."""
+    n = W.shape[0]
+    ncv = min(n - 1, max(2 * count + 1, count + 24))
+    try:
+        values, vectors = spla.eigs(W, k=count, sigma=shift, OPinv=inverse, which="LM",
+                                    tol=tolerance, ncv=ncv, maxiter=max(1000, 10 * n // ncv))
+        return values, vectors, True
+    except spla.ArpackNoConvergence as failure:
+        return failure.eigenvalues, failure.eigenvectors, False
+
+
+def _rayleigh_quotients(W: sp.csr_matrix, vectors: np.ndarray) -> np.ndarray:
+    products = W @ vectors
+    return np.einsum("ij,ij->j", vectors.conj(), products) / np.einsum(
+        "ij,ij->j", vectors.conj(), vectors
+    )
+
+
+def _normalize_columns(vectors: np.ndarray) -> np.ndarray:
+    """Unit 2-norm columns whose largest-modulus entry is real and positive."""
+    vectors = np.asarray(vectors, dtype=np.complex128)
+    if vectors.size == 0:
+        return vectors
+    pivot = vectors[np.argmax(np.abs(vectors), axis=0), np.arange(vectors.shape[1])]
+    phase = pivot / np.abs(pivot)
+    vectors = vectors / phase
+    return vectors / np.linalg.norm(vectors, axis=0)
+
+
+def _residuals(W: sp.spmatrix | np.ndarray, values: np.ndarray, vectors: np.ndarray,
+               scale: float) -> np.ndarray:
+    """``||W v - lambda v||_2 / ||W||_1`` for unit columns ``v``."""
+    if vectors.size == 0:
+        return np.zeros(0)
+    difference = W @ vectors - vectors * values[None, :]
+    return np.linalg.norm(difference, axis=0) / max(scale, np.finfo(float).tiny)
+
+
+def _stationary_residual(W: sp.csr_matrix, p: np.ndarray, scale: float) -> float:
+    """``||W p||_1 / (||W||_1 ||p||_1)``."""
+    return float(np.abs(W @ p).sum() / (max(scale, np.finfo(float).tiny) * np.abs(p).sum()))
+
+

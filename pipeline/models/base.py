@@ -1,0 +1,142 @@
+"""The Model interface: a generator described by row blocks.
+
+Convention: ``W[i, j]`` (``i != j``) is the rate from state ``j`` to state ``i``;
+``W[j, j] = -(exit rate of j)``; ``dp/dt = W p``. Row ``i`` of ``W`` therefore lists the
+*incoming* rates of state ``i`` and its diagonal. A model hands out rows ``[start, stop)`` as
+CSR pieces; whole-matrix assembly, chunked assembly and per-rank MPI assembly all use the
+same call. Models never import a solver library or the store.
+"""
+
+from __future__ import annotations
+
+from abc import ABC, abstractmethod
+from dataclasses import dataclass
+from typing import Any, ClassVar, Protocol
+
+import numpy as np
+
+from pipeline.errors import ModelError
+
+__all__ = ["BLOCK_TOLERANCE", "ExactResults", "Model", "RowBlock", "validate_block"]
+
+#: Relative tolerance of the generator checks (column sums against the largest exit rate).
+BLOCK_TOLERANCE = 1e-12
+
+
+@dataclass(frozen=True)
+class RowBlock:
+    """Rows ``start..stop-1`` of ``W`` in CSR form.
+
+    ``indptr`` has ``stop - start + 1`` entries starting at 0; ``indices`` are global column
+    (source-state) indices; ``data`` are the rates (float64), the diagonal included.
+    """
+
+    start: int
+    stop: int
+    indptr: np.ndarray
+    indices: np.ndarray
+    data: np.ndarray
+
+    @property
+    def nnz(self) -> int:
+        return int(self.indptr[-1])
+
+
+class ExactResults(Protocol):
+    """Known results for a model, used by ``verify`` and the tests."""
+
+    sources: tuple[str, ...]
+
+    def slowest_eigenvalues(self, count: int) -> np.ndarray:
+        """At least ``count`` slowest eigenvalues, ordered slowest first; the list is
+        extended past ``count`` to finish the last group of equal real parts."""
+
+    def stationary(self, start: int, stop: int) -> np.ndarray | None:
+        """Exact stationary probabilities of states ``start..stop-1``, or None."""
+
+
+class Model(ABC):
+    """A continuous-time Markov generator given by row blocks.
+
+    Subclasses set :attr:`name` and implement the abstract methods; they must be
+    vectorized (no Python loop over states) and deterministic: a row does not depend on how
+    the state range is cut into blocks.
+    """
+
+    name: ClassVar[str]
+
+    @property
+    @abstractmethod
+    def n_states(self) -> int:
+        """Number of states."""
+
+    @property
+    @abstractmethod
+    def conserving(self) -> bool:
+        """True if no probability leaves the system (column sums are zero)."""
+
+    @abstractmethod
+    def row_block(self, start: int, stop: int) -> RowBlock:
+        """Rows ``start..stop-1`` of ``W``."""
+
+    @abstractmethod
+    def nnz_upper_bound(self, start: int, stop: int) -> int:
+        """An upper bound on the nonzeros of rows ``start..stop-1`` (for preallocation)."""
+
+    @abstractmethod
+    def state_labels(self, start: int, stop: int) -> dict[str, np.ndarray]:
+        """Labels of states ``start..stop-1`` (e.g. lattice coordinates ``[state, axis]``)."""
+
+    def exact(self) -> ExactResults | None:
+        """Known spectrum and stationary law, or None when none is known."""
+        return None
+
+    def describe(self) -> dict[str, Any]:
+        """Plain-data summary kept with the results (shape, kind, ...)."""
+        return {"model": self.name, "n_states": self.n_states, "conserving": self.conserving}
+
+    def warnings(self) -> list[str]:
+        """Things a user should know before solving (ill-conditioning, ...)."""
+        return []
+
+
+def validate_block(block: RowBlock, n_states: int) -> float:
+    """Check a row block: shapes, finite rates, off-diagonals >= 0, diagonal <= 0.
+
+    Returns the largest exit rate in the block (``max -W[i, i]``), the scale of later
+    column-sum checks. Raises :class:`ModelError` naming the first bad row.
+    """
+    rows = block.stop - block.start
+    if block.indptr.shape != (rows + 1,) or block.indptr[0] != 0:
+        raise ModelError(f"row block {block.start}:{block.stop}: malformed indptr")
+    if block.indices.shape != block.data.shape or block.indices.size != block.nnz:
+        raise ModelError(f"row block {block.start}:{block.stop}: indices and data disagree")
+    if block.nnz == 0:
+        return 0.0
+    if block.indices.min() < 0 or block.indices.max() >= n_states:
+        raise ModelError(f"row block {block.start}:{block.stop}: column index out of range")
+    bad = ~np.isfinite(block.data)
+    if bad.any():
+        row = _row_of(block, int(np.argmax(bad)))
+        raise ModelError(f"state {row}: rate is not finite ({block.data[bad][0]})")
+    row_of_entry = np.repeat(np.arange(block.start, block.stop), np.diff(block.indptr))
+    diagonal = block.indices == row_of_entry
+    negative = (~diagonal) & (block.data < 0)
+    if negative.any():
+        index = int(np.argmax(negative))
+        raise ModelError(
+            f"W[{row_of_entry[index]}, {block.indices[index]}] = {block.data[index]}: "
+            "off-diagonal rates must be >= 0"
+        )
+    positive = diagonal & (block.data > 0)
+    if positive.any():
+        index = int(np.argmax(positive))
+        raise ModelError(
+            f"W[{row_of_entry[index]}, {row_of_entry[index]}] = {block.data[index]}: "
+            "the diagonal is minus an exit rate and must be <= 0"
+        )
+    return float(-block.data[diagonal].min(initial=0.0))
+
+
+def _row_of(block: RowBlock, entry: int) -> int:
+    return block.start + int(np.searchsorted(block.indptr, entry, side="right") - 1)

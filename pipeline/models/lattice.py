@@ -1,0 +1,279 @@
+"""A walker on a d-dimensional hypercubic lattice, optionally with quenched disorder.
+
+States are the sites, numbered by their flat index in C order of the lattice shape:
+``state = sum_a x_a * stride_a`` with ``stride_a = prod(size[a+1:])``. Along axis ``a`` the
+walker hops to ``x_a + 1`` at rate ``forward[a]`` and to ``x_a - 1`` at rate ``backward[a]``
+(rates per unit time). Boundaries per axis:
+
+* ``periodic``: the axis is a ring;
+* ``reflecting``: hops off either edge do not exist;
+* ``absorbing``: hops off either edge leave the system, so ``W`` is a sub-generator.
+
+Disorder (optional) multiplies rates by seeded random factors: ``bonds`` gives every bond one
+factor shared by its two hop directions (random barriers); ``sites`` gives every site one
+factor multiplying all hops out of it (random traps). A factor depends only on the seed and
+on the bond or site, never on how the rows are cut into blocks or ranks.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+
+from pipeline.models.base import Model, RowBlock
+
+__all__ = ["LatticeWalk"]
+
+_FACTOR_CHUNK = 1 << 16  # random factors are drawn in chunks of this many sites
+
+
+@dataclass(frozen=True)
+class Disorder:
+    on: str  # "bonds" or "sites"
+    law: str  # "uniform" or "lognormal"
+    low: float
+    high: float
+    sigma: float
+    seed: int
+
+    def factors(self, stream: int, sites: np.ndarray) -> np.ndarray:
+        """Factors of the given sites (any int array) in random stream ``stream``.
+
+        Drawn in fixed chunks of sites, each chunk from its own seed sequence
+        ``(seed, stream, chunk)``, so a site's factor never depends on which sites are asked
+        for together. Returns float64 of the shape of ``sites``.
+        """
+        sites = np.asarray(sites, dtype=np.int64)
+        chunk_of_site = sites // _FACTOR_CHUNK
+        chunks, position = np.unique(chunk_of_site, return_inverse=True)
+        table = np.empty((chunks.size, _FACTOR_CHUNK))
+        for row, chunk in enumerate(chunks):  # a loop over chunks of 65536 sites
+            generator = np.random.default_rng(
+                np.random.SeedSequence([self.seed, stream, int(chunk)])
+            )
+            if self.law == "uniform":
+                table[row] = generator.uniform(self.low, self.high, _FACTOR_CHUNK)
+            else:
+                table[row] = np.exp(self.sigma * generator.standard_normal(_FACTOR_CHUNK))
+        return table[position.reshape(sites.shape), sites % _FACTOR_CHUNK]
+
+
+class LatticeWalk(Model):
+    """Walker on a hypercubic lattice; see the module docstring for conventions."""
+
+    name = "lattice"
+
+    def __init__(
+        self,
+        size: tuple[int, ...],
+        boundary: tuple[str, ...],
+        forward: tuple[float, ...],
+        backward: tuple[float, ...],
+        disorder: Disorder | None = None,
+    ) -> None:
+        self.shape = tuple(int(s) for s in size)
+        self.boundary = tuple(boundary)
+        self.forward = tuple(float(r) for r in forward)
+        self.backward = tuple(float(r) for r in backward)
+        self.disorder = disorder
+        self.dims = len(self.shape)
+        self.strides = tuple(math.prod(self.shape[a + 1 :]) for a in range(self.dims))
+        self._n_states = math.prod(self.shape)
+        # int32 column indices whenever every index and the nonzero count fit.
+        fits = self._n_states * (2 * self.dims + 1) < 2**31 - 1
+        self.index_dtype = np.int32 if fits else np.int64
+
+    @classmethod
+    def from_config(cls, config: Any) -> LatticeWalk:
+        disorder = None
+        if config.disorder is not None:
+            d = config.disorder
+            disorder = Disorder(d.on, d.law, d.low, d.high, d.sigma, d.seed)
+        return cls(config.size, config.boundary, config.forward, config.backward, disorder)
+
+    # -- Model interface ---------------------------------------------------------------
+
+    @property
+    def n_states(self) -> int:
+        return self._n_states
+
+    @property
+    def conserving(self) -> bool:
+        return "absorbing" not in self.boundary
+
+    def nnz_upper_bound(self, start: int, stop: int) -> int:
+        return (stop - start) * (2 * self.dims + 1)
+
+    def nnz_count(self) -> int:
+        """Exact number of stored nonzeros (zero rates are not stored)."""
+        n = self._n_states
+        total = n  # the diagonal
+        for axis in range(self.dims):
+            size, kind = self.shape[axis], self.boundary[axis]
+            if kind == "periodic" and size == 2:
+                total += n if self.forward[axis] + self.backward[axis] > 0 else 0
+                continue
+            links = n if kind == "periodic" else n - n // size
+            total += links * ((self.forward[axis] > 0) + (self.backward[axis] > 0))
+        return total
+
+    def coordinates(self, start: int, stop: int) -> np.ndarray:
+        """Lattice coordinates of states ``start..stop-1``, int64 ``[state, axis]``."""
+        flat = np.arange(start, stop, dtype=np.int64)
+        return np.stack(np.unravel_index(flat, self.shape), axis=1).astype(np.int64)
+
+    def state_labels(self, start: int, stop: int) -> dict[str, np.ndarray]:
+        return {"coordinate": self.coordinates(start, stop)}
+
+    def row_block(self, start: int, stop: int) -> RowBlock:
+        """Rows ``start..stop-1`` of ``W`` (incoming rates and the diagonal)."""
+        rows = stop - start
+        width = 2 * self.dims + 1
+        state = np.arange(start, stop, dtype=np.int64)
+        columns = np.empty((rows, width), dtype=np.int64)
+        values = np.empty((rows, width), dtype=np.float64)
+        present = np.ones((rows, width), dtype=bool)
+        exit_rate = np.zeros(rows, dtype=np.float64)
+        # Column layout per row: [from -s_0, ..., from -s_{d-1}, diagonal,
+        # from +s_{d-1}, ..., from +s_0]: sorted whenever no wrap-around occurs.
+        diagonal_slot = self.dims
+        for axis in range(self.dims):
+            size, stride = self.shape[axis], self.strides[axis]
+            kind = self.boundary[axis]
+            coordinate = (state // stride) % size
+            at_low, at_high = coordinate == 0, coordinate == size - 1
+            below_slot, above_slot = axis, width - 1 - axis
+            # Incoming forward hop from the site below (x - 1), rate forward * factor.
+            source_below = state - stride
+            source_above = state + stride
+            if kind == "periodic":
+                source_below = np.where(at_low, state + (size - 1) * stride, source_below)
+                source_above = np.where(at_high, state - (size - 1) * stride, source_above)
+            else:
+                present[:, below_slot] = ~at_low
+                present[:, above_slot] = ~at_high
+            columns[:, below_slot] = source_below
+            columns[:, above_slot] = source_above
+            forward_in, backward_in, forward_out, backward_out = self._axis_rates(
+                axis, state, coordinate
+            )
+            values[:, below_slot] = forward_in
+            values[:, above_slot] = backward_in
+            # Exit rate of the row's own state: every hop that exists, off-edge hops of an
+            # absorbing axis included (they leave the system).
+            if kind == "reflecting":
+                forward_out = np.where(at_high, 0.0, forward_out)
+                backward_out = np.where(at_low, 0.0, backward_out)
+            exit_rate += forward_out
+            exit_rate += backward_out
+            if kind == "periodic" and size == 2:
+                # Both neighbours are the same site: one entry carries both rates.
+                values[:, below_slot] = values[:, below_slot] + values[:, above_slot]
+                present[:, above_slot] = False
+        columns[:, diagonal_slot] = state
+        values[:, diagonal_slot] = -exit_rate
+        # Rates that are exactly zero (one-way hopping) are not stored.
+        present &= values != 0.0
+        present[:, diagonal_slot] = True
+        return _compress(start, stop, columns, values, present, self.index_dtype)
+
+    def exact(self):
+        from pipeline.analytic.lattice import LatticeExact
+
+        return LatticeExact.for_model(self)
+
+    def describe(self) -> dict[str, Any]:
+        info = super().describe()
+        info.update(
+            shape=list(self.shape),
+            boundary=list(self.boundary),
+            forward=list(self.forward),
+            backward=list(self.backward),
+            disorder=None if self.disorder is None else self.disorder.__dict__.copy(),
+        )
+        return info
+
+    def warnings(self) -> list[str]:
+        notes = []
+        for axis in range(self.dims):
+            kind = self.boundary[axis]
+            if kind == "periodic":
+                continue
+            u, v = self.forward[axis], self.backward[axis]
+            if u == 0 or v == 0:
+                notes.append(
+                    f"axis {axis}: one-way hopping on a {kind} axis makes W defective "
+                    "(Jordan blocks); eigenvalues are ill-conditioned and match the exact ones "
+                    "only to about tolerance**(1/size)"
+                )
+                continue
+            # Similarity to a symmetric matrix costs a factor (u/v)^((L-1)/2): its size is
+            # the condition of the eigenvector basis (common practice).
+            exponent = 0.5 * (self.shape[axis] - 1) * abs(math.log10(u / v))
+            if exponent > 8:
+                notes.append(
+                    f"axis {axis}: biased {kind} axis (forward/backward = {u / v:.3g}) has an "
+                    f"eigenvector condition of about 1e{exponent:.0f}; eigenvalues far from the "
+                    "stationary one may be inaccurate even with small residuals"
+                )
+        return notes
+
+    # -- helpers ---------------------------------------------------------------------
+
+    def _axis_rates(
+        self, axis: int, state: np.ndarray, coordinate: np.ndarray
+    ) -> tuple[Any, Any, Any, Any]:
+        """Rates along ``axis`` for each row's state ``x``.
+
+        Returns ``(forward_in, backward_in, forward_out, backward_out)``: the hop from
+        ``x - 1`` into ``x``, from ``x + 1`` into ``x``, and out of ``x`` up and down.
+        Without disorder these are the plain scalar rates.
+        """
+        u, v = self.forward[axis], self.backward[axis]
+        if self.disorder is None:
+            return u, v, u, v
+        size, stride = self.shape[axis], self.strides[axis]
+        below = np.where(coordinate == 0, state + (size - 1) * stride, state - stride)
+        if self.disorder.on == "sites":
+            # Random traps: every hop out of site y is scaled by factor(y).
+            above = np.where(coordinate == size - 1, state - (size - 1) * stride, state + stride)
+            own = self.disorder.factors(self.dims, state)
+            return (u * self.disorder.factors(self.dims, below),
+                    v * self.disorder.factors(self.dims, above), u * own, v * own)
+        # Random barriers: stream 2a holds the bond from y to y + e_a (for y on the high edge:
+        # the wrap bond of a ring, or the exit bond of an absorbing axis); stream 2a+1 the
+        # exit bond off the low edge of an absorbing axis.
+        bond_up = self.disorder.factors(2 * axis, state)
+        bond_down = self.disorder.factors(2 * axis, below)
+        forward_in, backward_in = u * bond_down, v * bond_up
+        forward_out, backward_out = u * bond_up, v * bond_down
+        if self.boundary[axis] == "absorbing":
+            edge = self.disorder.factors(2 * axis + 1, state)
+            backward_out = np.where(coordinate == 0, v * edge, backward_out)
+        return forward_in, backward_in, forward_out, backward_out
+
+    def trap_factors(self, start: int, stop: int) -> np.ndarray:
+        """Site factors of states ``start..stop-1`` (site disorder only)."""
+        return self.disorder.factors(self.dims, np.arange(start, stop, dtype=np.int64))
+
+
+def _compress(
+    start: int,
+    stop: int,
+    columns: np.ndarray,
+    values: np.ndarray,
+    present: np.ndarray,
+    index_dtype: type,
+) -> RowBlock:
+    """Pack a fixed-width stencil with a presence mask into CSR pieces."""
+    rows, width = columns.shape
+    if present.all():
+        indptr = np.arange(0, rows * width + 1, width, dtype=np.int64)
+        return RowBlock(start, stop, indptr, columns.astype(index_dtype).ravel(), values.ravel())
+    counts = present.sum(axis=1)
+    indptr = np.zeros(rows + 1, dtype=np.int64)
+    np.cumsum(counts, out=indptr[1:])
+    return RowBlock(start, stop, indptr, columns[present].astype(index_dtype), values[present])

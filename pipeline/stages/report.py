@@ -1,0 +1,90 @@
+"""Stage ``report``: a short summary table of a run, built from the store.
+
+:func:`summarize` is also what ``gapline show STORE RUN`` prints.
+"""
+
+from __future__ import annotations
+
+import math
+
+from pipeline.stages.base import RunContext, StageOutput
+from pipeline.store import GroupData, Store
+from pipeline.verification.checks import spectral_gap
+
+NAME = "report"
+CONFIG_SECTIONS: tuple[str, ...] = ()
+UPSTREAM = "verify"
+SHOWN_MODES = 12
+
+
+def run(ctx: RunContext) -> StageOutput:
+    text = summarize(ctx.store, ctx.run)
+    print(text, flush=True)
+    return StageOutput({"report": GroupData(attrs={"summary": text})})
+
+
+def summarize(store: Store, run: str) -> str:
+    attrs = store.run_attrs(run)
+    model = attrs.get("model", {})
+    lines = [f"run {run}: {_model_line(model)}"]
+    assembled = store.group(run, "assemble", required=False)
+    if assembled is not None:
+        a = assembled.attrs
+        lines.append(f"  states {a['n_states']}, nonzeros {a['nnz']}, ||W||_1 = "
+                     f"{a['norm1']:.6g}, {'conserving' if a['conserving'] else 'sub-generator'}")
+    spectrum = store.group(run, "spectrum", required=False)
+    if spectrum is None:
+        lines.append("  spectrum: not computed (or interrupted)")
+        return "\n".join(lines)
+    s = dict(spectrum.attrs)
+    values = spectrum["eigenvalues"][:]
+    residuals = spectrum["residuals"][:]
+    lines.append(f"  backend {s['backend']}: {s['method']}")
+    lines.append("  completeness: " + ("certified" if s["certified"] else "NOT certified")
+                 + f" ({s['certificate'].get('note', '')})")
+    conserving = bool(assembled.attrs["conserving"]) if assembled is not None else True
+    gap = spectral_gap(values, conserving)
+    if gap is not None:
+        label = "spectral gap" if conserving else "decay rate"
+        relaxation = 1.0 / gap if gap > 0 else math.inf
+        lines.append(f"  {label} {gap:.10g}   relaxation time {relaxation:.6g}")
+    lines.append("   mode          Re(lambda)          Im(lambda)    residual")
+    for index in range(min(values.size, SHOWN_MODES)):
+        value = values[index]
+        lines.append(f"  {index:5d}  {value.real:18.10e}  {value.imag:18.10e}  "
+                     f"{residuals[index]:10.2e}")
+    if values.size > SHOWN_MODES:
+        lines.append(f"  ... {values.size - SHOWN_MODES} more modes in the store")
+    stationary = store.group(run, "stationary", required=False)
+    if stationary is not None:
+        st = stationary.attrs
+        lines.append(f"  stationary: residual {st['residual']:.2e}, {st['method']}")
+    verify = store.group(run, "verify", required=False)
+    if verify is not None:
+        checks = verify.attrs["checks"]
+        passed = sum(1 for c in checks if c["passed"])
+        verdict = "PASSED" if verify.attrs["passed"] else "FAILED"
+        lines.append(f"  verify: {verdict} ({passed}/{len(checks)} checks)")
+        for check in checks:
+            mark = "ok " if check["passed"] else "BAD"
+            lines.append(f"    {mark} {check['name']:<26} {_number(check['value']):>12} "
+                         f"(reference {_number(check['reference'])}, tolerance "
+                         f"{_number(check['tolerance'])})")
+    return "\n".join(lines)
+
+
+def _model_line(model: dict) -> str:
+    if model.get("model") == "lattice":
+        shape = "x".join(str(s) for s in model.get("shape", []))
+        kinds = ", ".join(model.get("boundary", []))
+        extra = " with disorder" if model.get("disorder") else ""
+        return f"lattice {shape} ({kinds}){extra}"
+    return str(model.get("model", "?"))
+
+
+def _number(value) -> str:
+    if isinstance(value, bool) or value is None or isinstance(value, str):
+        return str(value)
+    if isinstance(value, int | float):
+        return f"{value:.3g}"
+    return str(value)

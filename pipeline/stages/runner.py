@@ -1,0 +1,121 @@
+"""Run stages in order: fingerprints, stage selection, atomic commits, timings."""
+
+from __future__ import annotations
+
+import platform
+import time
+from dataclasses import dataclass
+from importlib.metadata import PackageNotFoundError, version
+from typing import Any
+
+import pipeline
+from pipeline.config import Config, fingerprint
+from pipeline.errors import ConfigError, StoreError
+from pipeline.models import build_model
+from pipeline.progress import log
+from pipeline.stages import STAGE_NAMES, STAGES
+from pipeline.stages.base import RunContext
+from pipeline.store import Store
+
+__all__ = ["RunOutcome", "run_pipeline", "software_versions", "stage_fingerprints"]
+
+
+@dataclass
+class RunOutcome:
+    run: str
+    store: str
+    stages_run: list[str]
+    verified: bool | None  # None when verify did not run
+
+
+def software_versions() -> dict[str, str]:
+    """Versions of the packages a result depends on (without importing them)."""
+    versions = {"gapline": pipeline.__version__, "python": platform.python_version()}
+    for name in ("numpy", "scipy", "zarr", "xarray", "dask", "petsc4py", "slepc4py"):
+        try:
+            versions[name] = version(name)
+        except PackageNotFoundError:
+            continue
+    return versions
+
+
+def stage_fingerprints(config: Config) -> dict[str, str]:
+    """Fingerprint of each stage: hash of the config sections it reads, its upstream
+    fingerprint and the code version."""
+    resolved = config.resolved()
+    prints: dict[str, str] = {}
+    for stage in STAGES:
+        payload: dict[str, Any] = {
+            "sections": {name: resolved.get(name) for name in stage.CONFIG_SECTIONS},
+            "upstream": prints.get(stage.UPSTREAM) if stage.UPSTREAM else None,
+            "code": pipeline.__version__,
+        }
+        prints[stage.NAME] = fingerprint(payload)
+    return prints
+
+
+def run_pipeline(
+    config: Config,
+    store_path: str | None = None,
+    start: str | None = None,
+    only: str | None = None,
+) -> RunOutcome:
+    """Run the stages of ``config`` (all, from ``start`` on, or ``only`` one)."""
+    for label, value in (("--from", start), ("--only", only)):
+        if value is not None and value not in STAGE_NAMES:
+            raise ConfigError(f"{label}: unknown stage {value!r}; expected one of "
+                              + ", ".join(STAGE_NAMES))
+    if only:
+        selected = [only]
+    elif start:
+        selected = list(STAGE_NAMES[STAGE_NAMES.index(start):])
+    else:
+        selected = list(STAGE_NAMES)
+    path = store_path or config.store.path
+    store = Store(path, create=True)
+    model = build_model(config.model)
+    prints = stage_fingerprints(config)
+    run = config.run.name
+    ctx = RunContext(config=config, store=store, run=run, model=model,
+                     backend_name=config.solve.backend, fingerprints=prints)
+    first = STAGES[STAGE_NAMES.index(selected[0])]
+    if first.UPSTREAM is not None:
+        _require_upstream(store, run, first.UPSTREAM, prints)
+    store.open_run(run, {
+        "config": config.resolved(),
+        "config_source": config.source,
+        "description": config.run.description,
+        "model": model.describe(),
+        "versions": software_versions(),
+    })
+    verified = None
+    for stage in STAGES:
+        if stage.NAME not in selected:
+            continue
+        log(f"stage {stage.NAME}: started")
+        started = time.perf_counter()
+        output = stage.run(ctx)
+        store.write_stage(run, stage.NAME, output.groups, prints[stage.NAME], output.record)
+        seconds = time.perf_counter() - started
+        timings = dict(store.run_attrs(run).get("timings", {}))
+        timings[stage.NAME] = seconds
+        store.update_run_attrs(run, {"timings": timings})
+        log(f"stage {stage.NAME}: committed in {seconds:.2f} s")
+        if stage.NAME == "verify":
+            verified = output.passed
+    return RunOutcome(run=run, store=str(store.path), stages_run=selected, verified=verified)
+
+
+def _require_upstream(store: Store, run: str, upstream: str, prints: dict[str, str]) -> None:
+    """Refuse to start mid-pipeline unless the upstream stage is committed for this config."""
+    if not store.has_run(run):
+        raise StoreError(f"run {run!r} is not in {str(store.path)!r}; run all stages first "
+                         "(without --from/--only)")
+    record = store.stage_record(run, upstream)
+    if record is None:
+        raise StoreError(f"run {run!r}: stage {upstream!r} has no committed result; rerun "
+                         f"with --from {upstream}")
+    if record.get("fingerprint") != prints[upstream]:
+        raise StoreError(f"run {run!r}: stored {upstream!r} results come from a different "
+                         f"config (fingerprint {record.get('fingerprint')}, expected "
+                         f"{prints[upstream]}); rerun with --from {upstream}")

@@ -1,0 +1,79 @@
+"""Stage ``solve``: the slowest modes and the stationary distribution."""
+
+from __future__ import annotations
+
+import time
+
+import numpy as np
+
+from pipeline.progress import log
+from pipeline.stages.base import RunContext, StageOutput
+from pipeline.store import ArraySpec, GroupData
+
+NAME = "solve"
+CONFIG_SECTIONS = ("solve",)
+UPSTREAM = "assemble"
+
+
+def run(ctx: RunContext) -> StageOutput:
+    settings = ctx.config.solve
+    backend = ctx.backend
+    started = time.perf_counter()
+    if ctx.operator is None:
+        log("solve: building the operator from the model (assemble results are reused)")
+        ctx.operator = backend.assemble(ctx.model)
+    operator = ctx.operator
+    modes = backend.slowest_modes(
+        operator,
+        settings.modes,
+        method=settings.method,
+        tolerance=settings.tolerance,
+        vectors=settings.vectors,
+        dense_limit=settings.dense_limit,
+        max_search=settings.max_search,
+    )
+    if not modes.certified:
+        log(f"warning: {modes.certificate.get('note')}")
+    if not modes.group_complete:
+        log(f"note: mode {settings.modes - 1} is not the last of its group of equal real "
+            "parts; raise solve.modes to keep the whole multiplicity")
+    spectrum = GroupData(
+        arrays={
+            "eigenvalues": ArraySpec(modes.values.astype(np.complex128), ("mode",)),
+            "residuals": ArraySpec(modes.residuals.astype(np.float64), ("mode",)),
+        },
+        attrs={
+            "backend": backend.name,
+            "method": modes.method,
+            "certified": modes.certified,
+            "certificate": modes.certificate,
+            "group_complete": modes.group_complete,
+            "requested_modes": settings.modes,
+            "seconds": modes.seconds,
+            "ordering": "decreasing real part, then increasing imaginary part",
+            "residual_definition": "||W v - lambda v||_2 / ||W||_1, ||v||_2 = 1",
+            **modes.info,
+        },
+    )
+    if modes.vectors is not None:
+        spectrum.arrays["vectors"] = ArraySpec(modes.vectors, ("state", "mode"))
+    groups = {"spectrum": spectrum}
+    if settings.stationary and operator.check.conserving:
+        result = backend.stationary(operator)
+        groups["stationary"] = GroupData(
+            arrays={"distribution": ArraySpec(result.distribution, ("state",))},
+            attrs={
+                "backend": backend.name,
+                "method": result.method,
+                "residual": result.residual,
+                "negative_mass": result.negative_mass,
+                "sum": float(np.sum(result.distribution)),
+                "seconds": result.seconds,
+                "residual_definition": "||W p||_1 / ||W||_1, sum(p) = 1",
+                **result.info,
+            },
+        )
+    elif settings.stationary:
+        log("solve: W is a sub-generator (absorbing boundary): no stationary distribution")
+    seconds = time.perf_counter() - started
+    return StageOutput(groups, record={"seconds": seconds, "certified": modes.certified})

@@ -1,0 +1,125 @@
+"""Stage ``verify``: compare stored results with exact results and certificates.
+
+Reads everything back from the store (so it also checks what users will load). Each check
+names its source; the stage passes only if every check does.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from pipeline.stages.base import RunContext, StageOutput
+from pipeline.store import GroupData
+from pipeline.verification.checks import Check, compare_multisets, spectral_gap
+
+NAME = "verify"
+CONFIG_SECTIONS = ("verify",)
+UPSTREAM = "solve"
+
+RESIDUAL_SOURCE = "common practice: backward error of an eigenpair, ||Wv - lv|| / ||W||"
+GENERATOR_SOURCE = "definition of a generator: columns sum to 0 (<= 0 with absorption)"
+ZERO_MODE_SOURCE = "a conserving generator has eigenvalue 0 (Perron-Frobenius; common practice)"
+CHUNK = 1 << 20
+
+
+def run(ctx: RunContext) -> StageOutput:
+    settings = ctx.config.verify
+    store, run_name = ctx.store, ctx.run
+    assembled = dict(store.group(run_name, "assemble").attrs)
+    spectrum = store.group(run_name, "spectrum")
+    values = spectrum["eigenvalues"][:]
+    residuals = spectrum["residuals"][:]
+    spectrum_attrs = dict(spectrum.attrs)
+    norm1 = float(assembled["norm1"])
+    conserving = bool(assembled["conserving"])
+    exact = ctx.model.exact()
+    checks: list[Check] = []
+
+    defect = float(assembled["column_sum_defect"]) / max(norm1, 1e-300)
+    checks.append(Check("generator.conservation", GENERATOR_SOURCE, defect, 0.0, 1e-12,
+                        defect <= 1e-12))
+    max_residual = float(residuals.max(initial=0.0))
+    checks.append(Check("spectrum.residuals", RESIDUAL_SOURCE, max_residual, 0.0,
+                        settings.residual_tolerance, max_residual <= settings.residual_tolerance))
+    if conserving and values.size:
+        zero = abs(complex(values[0])) / norm1
+        checks.append(Check("spectrum.stationary_mode", ZERO_MODE_SOURCE, zero, 0.0,
+                            settings.tolerance, zero <= settings.tolerance))
+
+    exact_values = exact.slowest_eigenvalues(values.size) if exact is not None else None
+    certified = bool(spectrum_attrs.get("certified"))
+    if exact_values is not None:
+        source = "; ".join(s for s in exact.sources if "detailed balance" not in s
+                           and "p = p0" not in s)
+        distance = compare_multisets(values, exact_values) / norm1
+        checks.append(Check("spectrum.slowest_set", source, distance, 0.0, settings.tolerance,
+                            distance <= settings.tolerance))
+        gap = spectral_gap(values, conserving)
+        exact_gap = spectral_gap(exact_values, conserving)
+        if gap is not None and exact_gap is not None and exact_gap > 0:
+            relative = abs(gap - exact_gap) / exact_gap
+            checks.append(Check("spectrum.gap", source, gap, exact_gap, settings.gap_tolerance,
+                                relative <= settings.gap_tolerance))
+        matched = distance <= settings.tolerance
+        checks.append(Check(
+            "spectrum.completeness",
+            "certificate of the solver; here also the exact spectrum",
+            spectrum_attrs.get("certificate", {}).get("kind"),
+            "certified or equal to the exact slowest set",
+            None,
+            certified or matched,
+        ))
+    else:
+        checks.append(Check(
+            "spectrum.completeness",
+            "certificate of the solver (no exact spectrum for this model)",
+            spectrum_attrs.get("certificate", {}).get("kind"),
+            "certified",
+            None,
+            certified,
+        ))
+
+    stationary = store.group(run_name, "stationary", required=False)
+    if stationary is not None:
+        attrs = dict(stationary.attrs)
+        residual = float(attrs["residual"])
+        checks.append(Check("stationary.residual", "common practice: ||W p||_1 / ||W||_1",
+                            residual, 0.0, settings.residual_tolerance,
+                            residual <= settings.residual_tolerance))
+        distribution = stationary["distribution"]
+        total, minimum = _sum_and_min(distribution)
+        checks.append(Check("stationary.normalization", "a probability sums to 1",
+                            total, 1.0, 1e-12, abs(total - 1.0) <= 1e-12))
+        negative = float(attrs.get("negative_mass", 0.0))
+        checks.append(Check("stationary.negative_mass",
+                            "a probability is >= 0 (mass clipped from rounding noise)",
+                            negative, 0.0, settings.tolerance,
+                            negative <= settings.tolerance and minimum >= 0))
+        if exact is not None and getattr(exact, "has_stationary", False):
+            difference = _l1_difference(distribution, exact)
+            source = "; ".join(s for s in exact.sources if "detailed balance" in s
+                               or "p = p0" in s or "barriers" in s)
+            checks.append(Check("stationary.exact", source, difference, 0.0, settings.tolerance,
+                                difference <= settings.tolerance))
+    passed = all(check.passed for check in checks)
+    group = GroupData(attrs={"passed": passed, "checks": [c.as_dict() for c in checks],
+                             "norm1": norm1})
+    return StageOutput({"verify": group}, record={"passed": passed}, passed=passed)
+
+
+def _sum_and_min(distribution) -> tuple[float, float]:
+    total, minimum = 0.0, np.inf
+    for start in range(0, distribution.shape[0], CHUNK):
+        piece = distribution[start : start + CHUNK]
+        total += float(np.sum(piece))
+        minimum = min(minimum, float(piece.min(initial=np.inf)))
+    return total, minimum
+
+
+def _l1_difference(distribution, exact) -> float:
+    """``sum_x |p(x) - p_exact(x)|``, streamed over chunks of states."""
+    total = 0.0
+    for start in range(0, distribution.shape[0], CHUNK):
+        stop = min(start + CHUNK, distribution.shape[0])
+        total += float(np.abs(distribution[start:stop] - exact.stationary(start, stop)).sum())
+    return total

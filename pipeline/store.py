@@ -1,0 +1,274 @@
+"""The one definition of the store layout (zarr v3), with its writers and readers.
+
+Layout (README.md, "Store layout", reproduces this)::
+
+    STORE/                              root group, attrs {"gapline_store": LAYOUT_VERSION}
+      RUN/                              one group per run; attrs:
+                                          config   resolved config (defaults filled in)
+                                          model    model summary (shape, rates, ...)
+                                          versions software versions
+                                          timings  seconds per stage
+                                          stages   {stage: {fingerprint, groups, finished}}
+        assemble/                       attrs: n_states, nnz, norm1, column_sum_defect, ...
+        spectrum/eigenvalues            complex128 [mode]   slowest first
+        spectrum/residuals              float64    [mode]   ||W v - l v|| / ||W||_1
+        spectrum/vectors                complex128 [state, mode]   (solve.vectors = true)
+        stationary/distribution         float64    [state]  (conserving generators)
+        verify/                         attrs: passed (bool), checks (list of {name, source,
+                                          value, reference, tolerance, passed})
+        report/                         attrs: summary (text)
+      _staging/                         stage outputs being written (never read)
+
+Every output group also carries attrs ``stage``, ``fingerprint`` and ``complete`` (True).
+
+Atomic stages: a stage writes all its groups under ``_staging/``, then moves each into place
+with a directory rename (replacing an older version only once the new one is whole), and
+only then records its fingerprint in the run's ``stages`` attribute. A group counts as a
+result only when ``complete`` is set *and* its fingerprint equals the recorded one, so an
+interrupted stage never looks complete, and an earlier complete result stays readable until
+the new one is committed.
+"""
+
+from __future__ import annotations
+
+import math
+import os
+import shutil
+import time
+import uuid
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from pipeline.errors import StoreError
+
+__all__ = [
+    "LAYOUT_VERSION",
+    "STAGE_GROUPS",
+    "ArraySpec",
+    "GroupData",
+    "Store",
+    "open_results",
+]
+
+LAYOUT_VERSION = 1
+#: stage -> the groups it writes under RUN/
+STAGE_GROUPS: dict[str, tuple[str, ...]] = {
+    "assemble": ("assemble",),
+    "solve": ("spectrum", "stationary"),
+    "verify": ("verify",),
+    "report": ("report",),
+}
+STAGING = "_staging"
+STATE_CHUNK = 1 << 20  # states per chunk along the state axis
+
+
+@dataclass
+class ArraySpec:
+    """An array to write: data and its dimension names (``[state]``, ``[mode]``...)."""
+
+    data: np.ndarray
+    dims: tuple[str, ...]
+
+
+@dataclass
+class GroupData:
+    arrays: dict[str, ArraySpec] = field(default_factory=dict)
+    attrs: dict[str, Any] = field(default_factory=dict)
+
+
+def _zarr():
+    import zarr
+
+    return zarr
+
+
+class Store:
+    """A gapline store at ``path`` (a directory holding a zarr v3 hierarchy)."""
+
+    def __init__(self, path: str | Path, create: bool = False) -> None:
+        self.path = Path(path)
+        zarr = _zarr()
+        if create:
+            if self.path.exists() and not (self.path / "zarr.json").exists() and any(
+                self.path.iterdir()
+            ):
+                raise StoreError(f"store {str(self.path)!r}: exists and is not a zarr store; "
+                                 "fix: choose another --store path")
+            self.root = zarr.open_group(str(self.path), mode="a", zarr_format=3)
+            if "gapline_store" not in self.root.attrs:
+                self.root.attrs["gapline_store"] = LAYOUT_VERSION
+        else:
+            if not (self.path / "zarr.json").exists():
+                raise StoreError(f"store {str(self.path)!r}: not found; fix: check the path or "
+                                 "run 'gapline run CONFIG --store PATH' first")
+            self.root = zarr.open_group(str(self.path), mode="r+", zarr_format=3)
+            if "gapline_store" not in self.root.attrs:
+                raise StoreError(f"store {str(self.path)!r}: a zarr store but not a gapline "
+                                 "store (no 'gapline_store' attribute)")
+
+    # -- runs ---------------------------------------------------------------------------
+
+    def runs(self) -> list[str]:
+        """Names of the run groups, sorted."""
+        names = [name for name, _ in self.root.groups() if not name.startswith("_")]
+        return sorted(names)
+
+    def has_run(self, run: str) -> bool:
+        return (self.path / run / "zarr.json").exists()
+
+    def run_attrs(self, run: str) -> dict[str, Any]:
+        if not self.has_run(run):
+            raise StoreError(f"run {run!r}: not in store {str(self.path)!r}; runs: "
+                             + (", ".join(self.runs()) or "none"))
+        return dict(self._zarr_group(run).attrs)
+
+    def open_run(self, run: str, attrs: dict[str, Any]) -> None:
+        """Create the run group if needed and merge ``attrs`` into its attributes."""
+        if not self.has_run(run):
+            self.root.create_group(run)
+        self.update_run_attrs(run, attrs)
+
+    def update_run_attrs(self, run: str, attrs: dict[str, Any]) -> None:
+        group = self._zarr_group(run)
+        group.attrs.update(_jsonable(attrs))
+
+    def stage_record(self, run: str, stage: str) -> dict[str, Any] | None:
+        return self.run_attrs(run).get("stages", {}).get(stage)
+
+    # -- writing ------------------------------------------------------------------------
+
+    def write_stage(
+        self, run: str, stage: str, groups: dict[str, GroupData], fingerprint: str,
+        record: dict[str, Any] | None = None,
+    ) -> None:
+        """Commit one stage's groups atomically (see the module docstring)."""
+        expected = set(STAGE_GROUPS[stage])
+        if not set(groups) <= expected:
+            raise ValueError(f"stage {stage!r} writes {sorted(expected)}, got {sorted(groups)}")
+        staging_name = f"{run}-{stage}-{os.getpid()}-{uuid.uuid4().hex[:8]}"
+        staging_dir = self.path / STAGING / staging_name
+        staging_dir.parent.mkdir(parents=True, exist_ok=True)
+        zarr = _zarr()
+        staging = zarr.open_group(str(staging_dir), mode="w", zarr_format=3)
+        for name, content in groups.items():
+            group = staging.create_group(name)
+            for array_name, spec in content.arrays.items():
+                _write_array(group, array_name, spec)
+            attrs = dict(content.attrs)
+            attrs.update(stage=stage, fingerprint=fingerprint)
+            group.attrs.update(_jsonable(attrs))
+            group.attrs["complete"] = True  # written last
+        run_dir = self.path / run
+        replaced = []
+        for name in groups:
+            final = run_dir / name
+            if final.exists():
+                trash = self.path / STAGING / f"replaced-{uuid.uuid4().hex[:8]}-{name}"
+                os.rename(final, trash)
+                replaced.append(trash)
+            os.rename(staging_dir / name, final)
+        stages = self.run_attrs(run).get("stages", {})
+        stages[stage] = {
+            "fingerprint": fingerprint,
+            "groups": sorted(groups),
+            "finished": time.strftime("%Y-%m-%dT%H:%M:%S%z"),
+            **(record or {}),
+        }
+        self.update_run_attrs(run, {"stages": stages})
+        for trash in replaced:
+            shutil.rmtree(trash, ignore_errors=True)
+        shutil.rmtree(staging_dir, ignore_errors=True)
+
+    # -- reading ------------------------------------------------------------------------
+
+    def group(self, run: str, name: str, required: bool = True):
+        """The committed group ``RUN/name`` (a zarr group), or None / StoreError."""
+        status = self.group_status(run, name)
+        if status == "complete":
+            return self._zarr_group(f"{run}/{name}")
+        if required:
+            raise StoreError(f"run {run!r}: no complete '{name}' results ({status}); fix: run "
+                             "the stage that writes it (gapline run CONFIG)")
+        return None
+
+    def group_status(self, run: str, name: str) -> str:
+        """'complete', 'missing' or 'incomplete' (interrupted or superseded)."""
+        if not (self.path / run / name / "zarr.json").exists():
+            return "missing"
+        attrs = dict(self._zarr_group(f"{run}/{name}").attrs)
+        record = self.stage_record(run, attrs.get("stage", ""))
+        if not attrs.get("complete") or record is None:
+            return "incomplete"
+        if record.get("fingerprint") != attrs.get("fingerprint"):
+            return "incomplete"
+        return "complete"
+
+    def _zarr_group(self, path: str):
+        zarr = _zarr()
+        return zarr.open_group(str(self.path / path), mode="r+", zarr_format=3)
+
+
+def _write_array(group: Any, name: str, spec: ArraySpec) -> None:
+    data = np.asarray(spec.data)
+    chunks = tuple(
+        min(max(size, 1), STATE_CHUNK if dim == "state" else max(size, 1))
+        for size, dim in zip(data.shape, spec.dims, strict=True)
+    )
+    if data.ndim == 2 and spec.dims[0] == "state":
+        # Keep chunks of vectors near 16 MiB whatever the mode count.
+        rows = max(1, min(data.shape[0], (16 * 2**20) // max(1, data.shape[1] * data.itemsize)))
+        chunks = (rows, data.shape[1])
+    array = group.create_array(name, shape=data.shape, dtype=data.dtype, chunks=chunks,
+                               dimension_names=list(spec.dims))
+    if data.ndim == 0 or data.size == 0:
+        array[...] = data
+        return
+    step = chunks[0]
+    for start in range(0, data.shape[0], step):  # whole chunks, one at a time
+        array[start : start + step] = data[start : start + step]
+
+
+def _jsonable(value: Any) -> Any:
+    """Plain JSON data: numpy scalars to Python, tuples to lists, NaN/inf to None."""
+    if isinstance(value, dict):
+        return {str(k): _jsonable(v) for k, v in value.items()}
+    if isinstance(value, list | tuple):
+        return [_jsonable(v) for v in value]
+    if isinstance(value, np.ndarray):
+        return _jsonable(value.tolist())
+    if isinstance(value, np.bool_ | bool):
+        return bool(value)
+    if isinstance(value, np.integer):
+        return int(value)
+    if isinstance(value, np.floating | float):
+        number = float(value)
+        return number if math.isfinite(number) else None
+    if isinstance(value, complex | np.complexfloating):
+        return [_jsonable(value.real), _jsonable(value.imag)]
+    return value
+
+
+def open_results(path: str | Path, run: str):
+    """The committed results of ``run`` as one :class:`xarray.Dataset` (lazy, dask-backed).
+
+    Variables: ``eigenvalues``, ``residuals`` (``mode``), ``vectors`` (``state, mode``) when
+    stored, ``distribution`` (``state``) when stored. Attributes: the run's attributes plus
+    the spectrum certificate.
+    """
+    import xarray as xr
+
+    store = Store(path)
+    attrs = store.run_attrs(run)
+    parts = []
+    for name in ("spectrum", "stationary"):
+        if store.group(run, name, required=(name == "spectrum")) is not None:
+            dataset = xr.open_zarr(str(store.path), group=f"{run}/{name}", consolidated=False)
+            for key in ("stage", "fingerprint", "complete"):
+                dataset.attrs.pop(key, None)
+            parts.append(dataset)
+    merged = xr.merge(parts, combine_attrs="drop_conflicts")
+    merged.attrs.update({k: v for k, v in attrs.items() if k != "stages"})
+    return merged
