@@ -133,7 +133,7 @@ class LatticeWalk(Model):
         rows = stop - start
         width = 2 * self.dims + 1
         state = np.arange(start, stop, dtype=np.int64)
-        columns = np.empty((rows, width), dtype=np.int64)
+        columns = np.empty((rows, width), dtype=self.index_dtype)
         values = np.empty((rows, width), dtype=np.float64)
         present = np.ones((rows, width), dtype=bool)
         exit_rate = np.zeros(rows, dtype=np.float64)
@@ -178,7 +178,7 @@ class LatticeWalk(Model):
         # Rates that are exactly zero (one-way hopping) are not stored.
         present &= values != 0.0
         present[:, diagonal_slot] = True
-        return _compress(start, stop, columns, values, present, self.index_dtype)
+        return _compress(start, stop, columns, values, present)
 
     def exact(self):
         from pipeline.analytic.lattice import LatticeExact
@@ -266,14 +266,13 @@ def _compress(
     columns: np.ndarray,
     values: np.ndarray,
     present: np.ndarray,
-    index_dtype: type,
 ) -> RowBlock:
     """Pack a fixed-width stencil with a presence mask into CSR pieces."""
     rows, width = columns.shape
     if present.all():
         indptr = np.arange(0, rows * width + 1, width, dtype=np.int64)
-        return RowBlock(start, stop, indptr, columns.astype(index_dtype).ravel(), values.ravel())
+        return RowBlock(start, stop, indptr, columns.ravel(), values.ravel())
     counts = present.sum(axis=1)
     indptr = np.zeros(rows + 1, dtype=np.int64)
     np.cumsum(counts, out=indptr[1:])
-    return RowBlock(start, stop, indptr, columns[present].astype(index_dtype), values[present])
+    return RowBlock(start, stop, indptr, columns[present], values[present])
