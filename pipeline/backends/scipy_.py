@@ -190,12 +190,25 @@ class ScipyBackend(Backend):
         return shift, lu
 
     def _enclosure(self, operator: Operator) -> SpectrumEnclosure:
+        """Gershgorin disks of ``W`` and the smaller of two Bendixson bounds: that of ``W``
+        and, for a conserving generator, that of ``S = P^{-1/2} W P^{1/2}`` with ``P`` the
+        stationary distribution (a similarity, so the same spectrum; ``S`` is symmetric
+        exactly when detailed balance holds, and its bound is then ~0)."""
         W = operator.handle["W"]
+        n = operator.n_states
         diagonal = W.diagonal()
         radii = operator.handle["column_abs"] - np.abs(diagonal)
-        skew = (W - W.T).tocsr()
-        imag_bound = 0.5 * float((abs(skew).T @ np.ones(operator.n_states)).max(initial=0.0))
-        return SpectrumEnclosure(diagonal, np.clip(radii, 0, None), imag_bound).compact()
+        bounds = {"plain": _skew_bound(W)}
+        if operator.check.conserving:
+            p = self._stationary_vector(operator)[0]
+            if p.min() > 1e-250:
+                root = np.sqrt(p)
+                S = sp.diags(1.0 / root) @ W @ sp.diags(root)
+                norm = float((abs(S).T @ np.ones(n)).max(initial=0.0))
+                # Margin for the rounding of the scaled entries (common practice).
+                bounds["balanced"] = _skew_bound(S) + 1e-12 * norm
+        operator.info["imag_bounds"] = bounds
+        return SpectrumEnclosure(diagonal, np.clip(radii, 0, None), min(bounds.values())).compact()
 
     def _shift_invert_modes(
         self, operator: Operator, count: int, tolerance: float, want_vectors: bool,
@@ -276,6 +289,24 @@ class ScipyBackend(Backend):
             raise SolverError("solve.stationary: W is a sub-generator (probability leaks "
                               "out), so there is no stationary distribution; set it to false")
         started = time.perf_counter()
+        p, method, steps = self._stationary_vector(operator, dense_limit)
+        W = operator.handle["W"]
+        negative_mass = float(-p[p < 0].sum()) + 0.0
+        p = np.clip(p, 0.0, None)
+        p /= p.sum()
+        residual = _stationary_residual(W, p, operator.check.norm1)
+        seconds = operator.info.get("stationary_seconds", 0.0) + time.perf_counter() - started
+        return Stationary(p, residual, negative_mass, method, seconds,
+                          info={"iterations": steps})
+
+    def _stationary_vector(
+        self, operator: Operator, dense_limit: int = 1024
+    ) -> tuple[np.ndarray, str, int]:
+        """Null vector of ``W`` normalized to sum 1, before clipping (cached)."""
+        cached = operator.handle.get("stationary")
+        if cached is not None:
+            return cached
+        started = time.perf_counter()
         W = operator.handle["W"]
         n = operator.n_states
         if n <= dense_limit and "lu" not in operator.handle:
@@ -301,12 +332,15 @@ class ScipyBackend(Backend):
                 if _stationary_residual(W, p, operator.check.norm1) < 1e-14:
                     break
             method = f"inverse iteration with the LU of W - {shift:.2e} I"
-        negative_mass = float(-p[p < 0].sum()) + 0.0
-        p = np.clip(p, 0.0, None)
-        p /= p.sum()
-        residual = _stationary_residual(W, p, operator.check.norm1)
-        return Stationary(p, residual, negative_mass, method, time.perf_counter() - started,
-                          info={"iterations": steps})
+        operator.handle["stationary"] = (p, method, steps)
+        operator.info["stationary_seconds"] = time.perf_counter() - started
+        return p, method, steps
+
+
+def _skew_bound(W: sp.spmatrix) -> float:
+    """``||(W - W^T)/2||_1``, an upper bound of ``|Im lambda|`` (Bendixson)."""
+    skew = (W - W.T).tocsr()
+    return 0.5 * float((abs(skew).T @ np.ones(W.shape[0])).max(initial=0.0))
 
 
 def _arpack_nearest(
