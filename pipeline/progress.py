@@ -10,7 +10,7 @@ import os
 import sys
 import time
 
-__all__ = ["Progress", "log"]
+__all__ = ["Progress", "log", "warn"]
 
 
 def _mode() -> str:
@@ -24,6 +24,11 @@ def log(message: str) -> None:
     """One timestamped line on stderr (silenced by ``GAPLINE_PROGRESS=off``)."""
     if _mode() != "off":
         print(f"[{time.strftime('%H:%M:%S')}] {message}", file=sys.stderr, flush=True)
+
+
+def warn(message: str) -> None:
+    """A warning line on stderr; never silenced (results may be affected)."""
+    print(f"[{time.strftime('%H:%M:%S')}] warning: {message}", file=sys.stderr, flush=True)
 
 
 class Progress:

@@ -62,6 +62,9 @@ class Modes:
     values : complex128 ``[mode]``, slowest first.
     residuals : float64 ``[mode]``, ``||W v - lambda v|| / ||W||_1``.
     vectors : complex128 ``[state, mode]`` (unit 2-norm, largest entry real positive) or None.
+    condition : float64 ``[mode]``, eigenvalue condition numbers (1 for a normal ``W``).
+    error_estimates : float64 ``[mode]``, first-order error bounds ``condition * residual *
+        ||W||_1`` in rate units: how far each eigenvalue may be from the exact one.
     certified : the set is proven to hold every eigenvalue with real part >= the last one.
     certificate : how that was decided (kind, radii, note).
     group_complete : False when the requested count cuts a group of equal real parts.
@@ -75,6 +78,8 @@ class Modes:
     certificate: dict[str, Any]
     group_complete: bool
     seconds: float
+    condition: np.ndarray | None = None
+    error_estimates: np.ndarray | None = None
     info: dict[str, Any] = field(default_factory=dict)
 
 

@@ -27,11 +27,13 @@ import time
 from typing import Any
 
 import numpy as np
+import scipy.linalg
 import scipy.sparse as sp
 import scipy.sparse.linalg as spla
 
 from pipeline.backends.base import Backend, Modes, Operator, Stationary, check_column_sums
 from pipeline.backends.completeness import SpectrumEnclosure, farthest_enclosed_distance
+from pipeline.backends.conditioning import eigenvalue_conditions
 from pipeline.errors import BackendError, SolverError
 from pipeline.models.base import Model, validate_block
 from pipeline.modes import grouping_tolerance, take_slowest
@@ -42,6 +44,7 @@ __all__ = ["ScipyBackend", "mpi_world_size"]
 SHIFT_FACTOR = 1e-9
 DENSE_MEMORY_LIMIT = 8 * 2**30  # bytes a dense solve may take before we refuse
 RESIDUAL_CEILING = 1e-6  # above this a mode is not trusted for the certificate
+CLUSTER_FACTOR = 1e-8  # eigenvalues closer than this times ||W||_1 are one cluster
 
 
 def mpi_world_size() -> int:
@@ -148,21 +151,26 @@ class ScipyBackend(Backend):
             )
         started = time.perf_counter()
         W = operator.handle["W"]
-        values, vectors = np.linalg.eig(W.toarray())
+        all_values, left, right = scipy.linalg.eig(W.toarray(), left=True, right=True)
         scale = operator.check.norm1
-        chosen, group_complete = take_slowest(values, count, grouping_tolerance(values, scale))
-        values, vectors = values[chosen], _normalize_columns(vectors[:, chosen])
+        chosen, group_complete = take_slowest(all_values, count,
+                                              grouping_tolerance(all_values, scale))
+        values, vectors = all_values[chosen], _normalize_columns(right[:, chosen])
         residuals = _residuals(W, values, vectors, scale)
+        condition = eigenvalue_conditions(values, vectors, all_values, left,
+                                          CLUSTER_FACTOR * scale)
         certificate = {"kind": "dense", "note": f"all {n} eigenvalues computed (LAPACK geev)"}
         return Modes(
             values=values.astype(np.complex128),
             residuals=residuals,
             vectors=vectors if want_vectors else None,
-            method="dense (numpy.linalg.eig, LAPACK geev)",
+            method="dense (scipy.linalg.eig, LAPACK geev)",
             certified=True,
             certificate=certificate,
             group_complete=group_complete,
             seconds=time.perf_counter() - started,
+            condition=condition,
+            error_estimates=condition * residuals * scale,
             info={"searched": n},
         )
 
@@ -269,6 +277,9 @@ class ScipyBackend(Backend):
             "note": note,
         }
         values, vectors, residuals = values[chosen], vectors[:, chosen], residuals[chosen]
+        left_values, left = self._left_modes(operator, rounds[-1]["searched"], tolerance)
+        condition = eigenvalue_conditions(values, vectors, left_values, left,
+                                          CLUSTER_FACTOR * scale)
         return Modes(
             values=values.astype(np.complex128),
             residuals=residuals,
@@ -278,9 +289,28 @@ class ScipyBackend(Backend):
             certificate=certificate,
             group_complete=group_complete,
             seconds=time.perf_counter() - started,
+            condition=condition,
+            error_estimates=condition * residuals * scale,
             info={"searched": rounds[-1]["searched"], "inner_solves": solve_count["n"],
                   "lu_fill_ratio": operator.info.get("lu_fill_ratio")},
         )
+
+    def _left_modes(
+        self, operator: Operator, count: int, tolerance: float
+    ) -> tuple[np.ndarray, np.ndarray]:
+        """The ``count`` left eigenpairs nearest the shift (``l^H W = mu l^H``), from ARPACK
+        on ``W^T`` with transposed solves of the same LU."""
+        n = operator.n_states
+        W = operator.handle["W"]
+        shift, lu = self._factorize(operator)
+        inverse_transpose = spla.LinearOperator(
+            (n, n), matvec=lambda x: lu.solve(np.asarray(x, dtype=np.float64), trans="T"),
+            dtype=np.float64,
+        )
+        values, vectors, _ = _arpack_nearest(W.T.tocsr(), inverse_transpose, shift, count,
+                                             tolerance)
+        # W^T y = mu y  means  conj(y)^H W = mu conj(y)^H: the left vector is conj(y).
+        return values, np.conj(vectors)
 
     # -- stationary distribution --------------------------------------------------------
 

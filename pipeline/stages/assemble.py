@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from pipeline.progress import log
+from pipeline.progress import log, warn
 from pipeline.stages.base import RunContext, StageOutput
 from pipeline.store import GroupData
 
@@ -14,7 +14,7 @@ UPSTREAM: str | None = None
 def run(ctx: RunContext) -> StageOutput:
     model = ctx.model
     for note in model.warnings():
-        log(f"warning: {note}")
+        warn(f"{note}")
     operator = ctx.backend.assemble(model)
     ctx.operator = operator
     check = operator.check

@@ -32,6 +32,8 @@ def summarize(store: Store, run: str) -> str:
         a = assembled.attrs
         lines.append(f"  states {a['n_states']}, nonzeros {a['nnz']}, ||W||_1 = "
                      f"{a['norm1']:.6g}, {'conserving' if a['conserving'] else 'sub-generator'}")
+        for note in a.get("warnings", []):
+            lines.append(f"  warning: {note}")
     spectrum = store.group(run, "spectrum", required=False)
     if spectrum is None:
         lines.append("  spectrum: not computed (or interrupted)")
@@ -83,7 +85,9 @@ def _model_line(model: dict) -> str:
 
 
 def _number(value) -> str:
-    if isinstance(value, bool) or value is None or isinstance(value, str):
+    if value is None:
+        return "inf/none"
+    if isinstance(value, bool) or isinstance(value, str):
         return str(value)
     if isinstance(value, int | float):
         return f"{value:.3g}"

@@ -6,7 +6,7 @@ import time
 
 import numpy as np
 
-from pipeline.progress import log
+from pipeline.progress import log, warn
 from pipeline.stages.base import RunContext, StageOutput
 from pipeline.store import ArraySpec, GroupData
 
@@ -33,7 +33,7 @@ def run(ctx: RunContext) -> StageOutput:
         max_search=settings.max_search,
     )
     if not modes.certified:
-        log(f"warning: {modes.certificate.get('note')}")
+        warn(f"{modes.certificate.get('note')}")
     if not modes.group_complete:
         log(f"note: mode {settings.modes - 1} is not the last of its group of equal real "
             "parts; raise solve.modes to keep the whole multiplicity")
@@ -52,9 +52,19 @@ def run(ctx: RunContext) -> StageOutput:
             "seconds": modes.seconds,
             "ordering": "decreasing real part, then increasing imaginary part",
             "residual_definition": "||W v - lambda v||_2 / ||W||_1, ||v||_2 = 1",
+            "error_estimate_definition": "condition * residual * ||W||_1 (rate units)",
             **modes.info,
         },
     )
+    if modes.condition is not None:
+        spectrum.arrays["condition"] = ArraySpec(modes.condition.astype(np.float64), ("mode",))
+        spectrum.arrays["error_estimates"] = ArraySpec(
+            modes.error_estimates.astype(np.float64), ("mode",))
+        worst = float(np.max(modes.error_estimates / operator.check.norm1, initial=0.0))
+        if not worst <= 1e-6:
+            warn(f"eigenvalue error estimates reach {worst:.1e} x ||W||_1 "
+                "(ill-conditioned, non-normal generator): small residuals do not make these "
+                "eigenvalues accurate")
     if modes.vectors is not None:
         spectrum.arrays["vectors"] = ArraySpec(modes.vectors, ("state", "mode"))
     groups = {"spectrum": spectrum}

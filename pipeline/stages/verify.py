@@ -19,6 +19,8 @@ UPSTREAM = "solve"
 RESIDUAL_SOURCE = "common practice: backward error of an eigenpair, ||Wv - lv|| / ||W||"
 GENERATOR_SOURCE = "definition of a generator: columns sum to 0 (<= 0 with absorption)"
 ZERO_MODE_SOURCE = "a conserving generator has eigenvalue 0 (Perron-Frobenius; common practice)"
+CONDITION_SOURCE = ("Wilkinson 1965, The Algebraic Eigenvalue Problem, ch. 2: error <= "
+                    "condition x backward error; relative to ||W||_1")
 CHUNK = 1 << 20
 
 
@@ -41,6 +43,11 @@ def run(ctx: RunContext) -> StageOutput:
     max_residual = float(residuals.max(initial=0.0))
     checks.append(Check("spectrum.residuals", RESIDUAL_SOURCE, max_residual, 0.0,
                         settings.residual_tolerance, max_residual <= settings.residual_tolerance))
+    if "error_estimates" in spectrum:
+        estimates = spectrum["error_estimates"][:]
+        worst = float(np.max(estimates, initial=0.0)) / norm1
+        checks.append(Check("spectrum.error_estimates", CONDITION_SOURCE, worst, 0.0,
+                            settings.tolerance, worst <= settings.tolerance))
     if conserving and values.size:
         zero = abs(complex(values[0])) / norm1
         checks.append(Check("spectrum.stationary_mode", ZERO_MODE_SOURCE, zero, 0.0,
