@@ -84,7 +84,12 @@ SCHEMA: dict[str, dict[str, tuple[str, Any, str]]] = {
     },
     "solve": {
         "modes": ("int", 10, "slowest modes wanted, the stationary mode 0 included (>= 1)"),
-        "backend": ("string", "auto", "'scipy' (one process), 'slepc' (MPI) or 'auto'"),
+        "backend": (
+            "string",
+            "auto",
+            "'scipy' (one process) or 'auto'; 'slepc' is reserved for the PETSc/SLEPc backend "
+            "under MPI",
+        ),
         "method": (
             "string",
             "auto",
@@ -529,11 +534,14 @@ def _plain(data: Any) -> Any:
 
 
 def describe_schema() -> str:
-    """The config reference as Markdown (README.md reproduces it)."""
+    """The config reference as Markdown (README.md reproduces it verbatim)."""
     lines = []
     for section, fields in SCHEMA.items():
-        title = section.replace("model:", "model (type = \"") + ("\")" if ":" in section else "")
-        lines.append(f"### `[{title}]`" if ":" not in section else f"### `[{title}]`")
+        if ":" in section:
+            table, kind = section.split(":")
+            lines.append(f"### `[{table}]` with `type = \"{kind}\"`")
+        else:
+            lines.append(f"### `[{section}]`")
         lines.append("")
         lines.append("| field | type | default | meaning |")
         lines.append("| --- | --- | --- | --- |")
@@ -544,6 +552,7 @@ def describe_schema() -> str:
                 shown = "—"
             else:
                 shown = f"`{json.dumps(default)}`"
+            meaning = meaning.replace("|", "\\|")
             lines.append(f"| `{name}` | {kind} | {shown} | {meaning} |")
         lines.append("")
-    return "\n".join(lines)
+    return "\n".join(lines).rstrip() + "\n"
