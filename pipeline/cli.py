@@ -66,6 +66,14 @@ def main(argv: list[str] | None = None) -> int:
     except GaplineError as error:
         print(f"gapline: error: {error}", file=sys.stderr)
         return EXIT_USER_ERROR
+    except MemoryError:
+        print("gapline: error: out of memory; fix: fewer states or modes (see 'gapline check')",
+              file=sys.stderr)
+        return EXIT_USER_ERROR
+    except OSError as error:
+        print(f"gapline: error: {error.strerror or error}: {error.filename or ''}".rstrip(": "),
+              file=sys.stderr)
+        return EXIT_USER_ERROR
     except KeyboardInterrupt:
         print("gapline: interrupted; committed stages are kept, the interrupted one is not",
               file=sys.stderr)

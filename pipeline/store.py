@@ -91,6 +91,9 @@ class Store:
     def __init__(self, path: str | Path, create: bool = False) -> None:
         self.path = Path(path)
         zarr = _zarr()
+        if self.path.exists() and not self.path.is_dir():
+            raise StoreError(f"store {str(self.path)!r}: is a file, not a store directory; "
+                             "fix: choose another --store path")
         if create:
             if self.path.exists() and not (self.path / "zarr.json").exists() and any(
                 self.path.iterdir()

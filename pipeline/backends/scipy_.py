@@ -44,6 +44,8 @@ __all__ = ["ScipyBackend", "mpi_world_size"]
 SHIFT_FACTOR = 1e-9
 DENSE_MEMORY_LIMIT = 8 * 2**30  # bytes a dense solve may take before we refuse
 RESIDUAL_CEILING = 1e-6  # above this a mode is not trusted for the certificate
+STATIONARY_MAX_STEPS = 60
+BASIS_MEMORY_FRACTION = 0.25  # of physical memory, for the Arnoldi basis
 CLUSTER_FACTOR = 1e-8  # eigenvalues closer than this times ||W||_1 are one cluster
 
 
@@ -235,7 +237,7 @@ class ScipyBackend(Backend):
 
         inverse = spla.LinearOperator((n, n), matvec=apply_inverse, dtype=np.float64)
         enclosure = self._enclosure(operator)
-        cap = max(min(max_search, n - 2), count)
+        cap = max(min(max_search, n - 2, _basis_capacity(n)), count)
         search = min(max(2 * count + 8, 24), cap)
         rounds = []
         while True:
@@ -355,16 +357,31 @@ class ScipyBackend(Backend):
             shift, lu = self._factorize(operator)
             p = np.full(n, 1.0 / n)
             steps = 0
-            while steps < 6:
+            # Each step shrinks mode k by sigma/|lambda_k|: a handful of steps unless the gap
+            # is close to sigma (huge systems); stop when the residual no longer improves.
+            previous = np.inf
+            while steps < STATIONARY_MAX_STEPS:
                 steps += 1
                 p = lu.solve(p)
                 p /= p.sum()
-                if _stationary_residual(W, p, operator.check.norm1) < 1e-14:
+                residual = _stationary_residual(W, p, operator.check.norm1)
+                if residual < 1e-15 or residual > 0.5 * previous:
                     break
+                previous = residual
             method = f"inverse iteration with the LU of W - {shift:.2e} I"
         operator.handle["stationary"] = (p, method, steps)
         operator.info["stationary_seconds"] = time.perf_counter() - started
         return p, method, steps
+
+
+def _basis_capacity(n: int) -> int:
+    """Most Arnoldi vectors of length ``n`` that fit in a share of physical memory (the
+    basis holds about 2k + 1 real vectors plus k complex eigenvectors)."""
+    try:
+        memory = os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES")
+    except (ValueError, OSError, AttributeError):
+        memory = 16 * 2**30
+    return max(1, int(BASIS_MEMORY_FRACTION * memory / (n * 8 * 4)))
 
 
 def _skew_bound(W: sp.spmatrix) -> float:
