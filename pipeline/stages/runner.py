@@ -71,13 +71,17 @@ def run_pipeline(
         selected = list(STAGE_NAMES[STAGE_NAMES.index(start):])
     else:
         selected = list(STAGE_NAMES)
+    from pipeline.backends import select_backend
+
+    backend = select_backend(config.solve.backend)  # refuse early (e.g. under mpiexec)
+    model = build_model(config.model)
     path = store_path or config.store.path
     store = Store(path, create=True)
-    model = build_model(config.model)
     prints = stage_fingerprints(config)
     run = config.run.name
     ctx = RunContext(config=config, store=store, run=run, model=model,
-                     backend_name=config.solve.backend, fingerprints=prints)
+                     backend_name=config.solve.backend, fingerprints=prints,
+                     _backend=backend)
     first = STAGES[STAGE_NAMES.index(selected[0])]
     if first.UPSTREAM is not None:
         _require_upstream(store, run, first.UPSTREAM, prints)
