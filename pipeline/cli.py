@@ -147,6 +147,10 @@ def _run_row(store, run: str) -> str:
                                                                                   True))
         gap_text = f"{gap:.6e}" if gap is not None else "-"
     verify = store.group(run, "verify", required=False)
-    verdict = "-" if verify is None else ("passed" if verify.attrs["passed"] else "FAILED")
+    status = store.group_status(run, "verify")
+    if verify is not None:
+        verdict = "passed" if verify.attrs["passed"] else "FAILED"
+    else:
+        verdict = {"missing": "-", "stale": "stale"}.get(status, "partial")
     return (f"{run:<24} {model[:32]:<32} {states!s:>10} {backend:<8} {certified:<9} "
             f"{gap_text:>18} {verdict:<7}")

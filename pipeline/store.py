@@ -145,16 +145,21 @@ class Store:
 
     def write_stage(
         self, run: str, stage: str, groups: dict[str, GroupData], fingerprint: str,
-        record: dict[str, Any] | None = None,
+        record: dict[str, Any] | None = None, upstream: str | None = None,
     ) -> None:
-        """Commit one stage's groups atomically (see the module docstring)."""
+        """Commit one stage's groups atomically (see the module docstring).
+
+        ``upstream`` names the stage whose results this one was computed from; its current
+        fingerprint is recorded, so a later rerun of the upstream stage marks this one stale.
+        """
         expected = set(STAGE_GROUPS[stage])
         if not set(groups) <= expected:
             raise ValueError(f"stage {stage!r} writes {sorted(expected)}, got {sorted(groups)}")
         staging_name = f"{run}-{stage}-{os.getpid()}-{uuid.uuid4().hex[:8]}"
         staging_dir = self.path / STAGING / staging_name
-        staging_dir.parent.mkdir(parents=True, exist_ok=True)
         zarr = _zarr()
+        # _staging is itself a (never read) group, so listing the root stays clean.
+        zarr.open_group(str(self.path / STAGING), mode="a", zarr_format=3)
         staging = zarr.open_group(str(staging_dir), mode="w", zarr_format=3)
         for name, content in groups.items():
             group = staging.create_group(name)
@@ -174,8 +179,13 @@ class Store:
                 replaced.append(trash)
             os.rename(staging_dir / name, final)
         stages = self.run_attrs(run).get("stages", {})
+        upstream_record = None
+        if upstream is not None:
+            upstream_record = {"stage": upstream,
+                               "fingerprint": stages.get(upstream, {}).get("fingerprint")}
         stages[stage] = {
             "fingerprint": fingerprint,
+            "upstream": upstream_record,
             "groups": sorted(groups),
             "finished": time.strftime("%Y-%m-%dT%H:%M:%S%z"),
             **(record or {}),
@@ -198,20 +208,34 @@ class Store:
         return None
 
     def group_status(self, run: str, name: str) -> str:
-        """'complete', 'missing' or 'incomplete' (interrupted or superseded)."""
+        """'complete', 'missing', 'incomplete' (interrupted or superseded) or 'stale' (an
+        upstream stage was rerun since)."""
         if not (self.path / run / name / "zarr.json").exists():
             return "missing"
         attrs = dict(self._zarr_group(f"{run}/{name}").attrs)
-        record = self.stage_record(run, attrs.get("stage", ""))
+        stages = self.run_attrs(run).get("stages", {})
+        record = stages.get(attrs.get("stage", ""))
         if not attrs.get("complete") or record is None:
             return "incomplete"
         if record.get("fingerprint") != attrs.get("fingerprint"):
             return "incomplete"
-        return "complete"
+        return "stale" if _is_stale(stages, record) else "complete"
 
     def _zarr_group(self, path: str):
         zarr = _zarr()
         return zarr.open_group(str(self.path / path), mode="r+", zarr_format=3)
+
+
+def _is_stale(stages: dict[str, Any], record: dict[str, Any]) -> bool:
+    """True when some stage upstream of ``record`` was recommitted after it."""
+    seen = 0
+    while record.get("upstream") and seen < len(stages) + 1:
+        upstream = record["upstream"]
+        current = stages.get(upstream["stage"])
+        if current is None or current.get("fingerprint") != upstream["fingerprint"]:
+            return True
+        record, seen = current, seen + 1
+    return False
 
 
 def _write_array(group: Any, name: str, spec: ArraySpec) -> None:

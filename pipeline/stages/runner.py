@@ -15,7 +15,7 @@ from pipeline.models import build_model
 from pipeline.progress import log
 from pipeline.stages import STAGE_NAMES, STAGES
 from pipeline.stages.base import RunContext
-from pipeline.store import Store
+from pipeline.store import STAGE_GROUPS, Store
 
 __all__ = ["RunOutcome", "run_pipeline", "software_versions", "stage_fingerprints"]
 
@@ -99,7 +99,8 @@ def run_pipeline(
         log(f"stage {stage.NAME}: started")
         started = time.perf_counter()
         output = stage.run(ctx)
-        store.write_stage(run, stage.NAME, output.groups, prints[stage.NAME], output.record)
+        store.write_stage(run, stage.NAME, output.groups, prints[stage.NAME], output.record,
+                          upstream=stage.UPSTREAM)
         seconds = time.perf_counter() - started
         timings = dict(store.run_attrs(run).get("timings", {}))
         timings[stage.NAME] = seconds
@@ -123,3 +124,7 @@ def _require_upstream(store: Store, run: str, upstream: str, prints: dict[str, s
         raise StoreError(f"run {run!r}: stored {upstream!r} results come from a different "
                          f"config (fingerprint {record.get('fingerprint')}, expected "
                          f"{prints[upstream]}); rerun with --from {upstream}")
+    status = store.group_status(run, STAGE_GROUPS[upstream][0])
+    if status != "complete":
+        raise StoreError(f"run {run!r}: stored {upstream!r} results are {status}; rerun with "
+                         f"--from {upstream}")
