@@ -46,28 +46,33 @@ def farthest_enclosed_distance(
 ) -> float:
     """Largest ``|z - shift|`` over enclosure points ``z`` with ``Re z >= threshold``.
 
-    For each disk ``D(c, r)`` cut by ``Re z >= t`` and ``|Im z| <= B``, distance from the real
-    point ``shift >= c`` grows as one moves left along the circle, so the farthest point is
-    one of: the leftmost point ``(c - r, 0)`` when ``c - r >= t``; the corner on the line
-    ``Re z = t`` at height ``min(sqrt(r^2 - (t - c)^2), B)``; the corner on ``|Im z| = B`` at
-    ``Re z = c - sqrt(r^2 - B^2)`` when that is ``>= t``. Returns 0 if the region is empty.
+    Each disk ``D(c, r)`` is cut by the half-plane ``Re z >= t`` and the strip
+    ``|Im z| <= B``; the region is convex and the distance to the real point ``shift`` is
+    convex, so the maximum sits at an extreme point: the point of the circle opposite the
+    shift, ``(c - r sign(shift - c), 0)``, when the half-plane keeps it; the corners on the
+    line ``Re z = t``, ``(t, min(sqrt(r^2 - (t - c)^2), B))``; the corners on the lines
+    ``|Im z| = B``, ``(c +- sqrt(r^2 - B^2), B)``, when the half-plane keeps them. (Along an arc
+    the distance is unimodal with its peak at the opposite point, and along a straight edge it
+    is convex, so arcs and edges add no other candidates.) Returns 0 if the region is empty.
     """
     c, r, bound = enclosure.centers, enclosure.radii, enclosure.imag_bound
-    t = float(threshold)
-    best = np.zeros_like(c)
-    # Leftmost point of the disk, when the half-plane keeps it.
-    left = c - r
-    keep = left >= t
-    best = np.where(keep, np.abs(shift - left), best)
-    # Corner on the line Re z = t.
+    t, shift = float(threshold), float(shift)
+    best = np.zeros_like(c, dtype=float)
+    # The circle's farthest point from the shift.
+    opposite = np.where(shift >= c, c - r, c + r)
+    keep = opposite >= t
+    best = np.where(keep, np.abs(shift - opposite), best)
+    # Corners on the line Re z = t.
     reach = r**2 - (t - c) ** 2
-    on_line = (reach >= 0) & (t <= c + r)
+    on_line = reach >= 0
     height = np.minimum(np.sqrt(np.clip(reach, 0, None)), bound)
     best = np.where(on_line, np.maximum(best, np.hypot(shift - t, height)), best)
-    # Corner on the line |Im z| = B.
+    # Corners on the lines |Im z| = B.
     if np.isfinite(bound):
         across = r**2 - bound**2
-        x_corner = c - np.sqrt(np.clip(across, 0, None))
-        has_corner = (across >= 0) & (x_corner >= t)
-        best = np.where(has_corner, np.maximum(best, np.hypot(shift - x_corner, bound)), best)
+        half_width = np.sqrt(np.clip(across, 0, None))
+        for x_corner in (c - half_width, c + half_width):
+            has_corner = (across >= 0) & (x_corner >= t)
+            best = np.where(has_corner, np.maximum(best, np.hypot(shift - x_corner, bound)),
+                            best)
     return float(best.max(initial=0.0))

@@ -61,7 +61,9 @@ def mpi_world_size() -> int:
 class ScipyBackend(Backend):
     name = "scipy"
     description = "one process: scipy.sparse, SuperLU, ARPACK; LAPACK for small problems"
-    block_rows = 1 << 17
+    # Rows per block: small enough for a block's arrays to stay in cache and be reused by
+    # the allocator, a multiple of the lattice's disorder chunk (65536 sites).
+    block_rows = 1 << 16
 
     @classmethod
     def unavailable_reason(cls) -> str | None:
@@ -82,7 +84,7 @@ class ScipyBackend(Backend):
         started = time.perf_counter()
         n = model.n_states
         bound = model.nnz_upper_bound(0, n)
-        indptr = np.zeros(n + 1, dtype=np.int64)
+        indptr: np.ndarray | None = None
         indices: np.ndarray | None = None
         data = np.empty(bound, dtype=np.float64)
         filled = 0
@@ -92,21 +94,32 @@ class ScipyBackend(Backend):
                 block = model.row_block(start, stop)
                 validate_block(block, n)
                 if indices is None:
+                    # indptr in the dtype of the indices when the bound allows: scipy keeps
+                    # both then, instead of scanning and converting an int64 indptr.
                     indices = np.empty(bound, dtype=block.indices.dtype)
+                    small = indices.dtype == np.int32 and max(bound, n) < 2**31 - 1
+                    indptr = np.empty(n + 1, dtype=np.int32 if small else np.int64)
+                    indptr[0] = 0
                 count = block.nnz
                 indices[filled : filled + count] = block.indices
                 data[filled : filled + count] = block.data
-                indptr[start + 1 : stop + 1] = block.indptr[1:] + filled
+                np.add(block.indptr[1:], filled, out=indptr[start + 1 : stop + 1])
                 filled += count
                 progress.advance(stop - start)
+        if indices is None:  # no states
+            indices, indptr = np.empty(0, dtype=np.int32), np.zeros(n + 1, dtype=np.int32)
         indices = indices[:filled]
         data = data[:filled]
         W = sp.csr_matrix((data, indices, indptr), shape=(n, n))
         # Column sums as W^T 1 (a transposed sparse product, no copy of W). Off-diagonals are
         # >= 0 and the diagonal <= 0 (checked per block), so |column| sums = sums - 2 diag.
-        column_sums = W.T @ np.ones(n)
+        # The vector of ones is then reused for the absolute sums (one n-vector less of fresh
+        # memory to fault in).
+        buffer = np.ones(n)
+        column_sums = W.T @ buffer
         diagonal = W.diagonal()
-        column_abs = column_sums - 2.0 * diagonal
+        column_abs = np.multiply(diagonal, -2.0, out=buffer)
+        column_abs += column_sums
         check = check_column_sums(column_sums, diagonal, model.conserving,
                                   float(column_abs.max(initial=0.0)))
         seconds = time.perf_counter() - started
@@ -230,10 +243,21 @@ class ScipyBackend(Backend):
         scale = operator.check.norm1
         shift, lu = self._factorize(operator)
         solve_count = {"n": 0}
+        # A conserving W has the exact left null vector 1 and the right one p (computed
+        # first). The search runs on Q (W - sigma I)^{-1} with the spectral projector
+        # Q = I - p 1^T, which removes the stationary mode: otherwise its eigenvalue 1/sigma
+        # swamps the Krylov basis and costs the other modes ~eps/(sigma |theta|) of accuracy
+        # when W is far from normal (Wielandt-type deflation; Saad 2011, Numerical Methods
+        # for Large Eigenvalue Problems, 4.2).
+        deflated = operator.check.conserving
+        stationary = self._stationary_vector(operator)[0] if deflated else None
 
         def apply_inverse(x: np.ndarray) -> np.ndarray:
             solve_count["n"] += 1
-            return lu.solve(np.asarray(x, dtype=np.float64))
+            y = lu.solve(np.asarray(x, dtype=np.float64))
+            if deflated:
+                y -= stationary * y.sum()
+            return y
 
         inverse = spla.LinearOperator((n, n), matvec=apply_inverse, dtype=np.float64)
         enclosure = self._enclosure(operator)
@@ -241,7 +265,11 @@ class ScipyBackend(Backend):
         search = min(max(2 * count + 8, 24), cap)
         rounds = []
         while True:
-            values, vectors, converged = _arpack_nearest(W, inverse, shift, search, tolerance)
+            values, vectors, converged = _arpack_nearest(
+                W, inverse, shift, search - int(deflated), tolerance, stationary
+            )
+            if deflated:
+                vectors = np.column_stack([stationary.astype(complex), vectors])
             values = _rayleigh_quotients(W, vectors)
             vectors = _normalize_columns(vectors)
             residuals = _residuals(W, values, vectors, scale)
@@ -305,12 +333,23 @@ class ScipyBackend(Backend):
         n = operator.n_states
         W = operator.handle["W"]
         shift, lu = self._factorize(operator)
-        inverse_transpose = spla.LinearOperator(
-            (n, n), matvec=lambda x: lu.solve(np.asarray(x, dtype=np.float64), trans="T"),
-            dtype=np.float64,
-        )
-        values, vectors, _ = _arpack_nearest(W.T.tocsr(), inverse_transpose, shift, count,
-                                             tolerance)
+        deflated = operator.check.conserving
+        stationary = self._stationary_vector(operator)[0] if deflated else None
+        ones = np.ones(n)
+
+        def apply_inverse_transpose(x: np.ndarray) -> np.ndarray:
+            y = lu.solve(np.asarray(x, dtype=np.float64), trans="T")
+            if deflated:  # Q^T = I - 1 p^T removes the left stationary vector 1
+                y -= ones * (stationary @ y)
+            return y
+
+        inverse_transpose = spla.LinearOperator((n, n), matvec=apply_inverse_transpose,
+                                                dtype=np.float64)
+        values, vectors, _ = _arpack_nearest(W.T.tocsr(), inverse_transpose, shift,
+                                             count - int(deflated), tolerance, None)
+        if deflated:
+            values = np.concatenate([[ones @ (W @ ones) / n], values])
+            vectors = np.column_stack([ones.astype(complex), vectors])
         # W^T y = mu y  means  conj(y)^H W = mu conj(y)^H: the left vector is conj(y).
         return values, np.conj(vectors)
 
@@ -391,14 +430,23 @@ def _skew_bound(W: sp.spmatrix) -> float:
 
 
 def _arpack_nearest(
-    W: sp.csr_matrix, inverse: spla.LinearOperator, shift: float, count: int, tolerance: float
+    W: sp.csr_matrix, inverse: spla.LinearOperator, shift: float, count: int, tolerance: float,
+    stationary: np.ndarray | None,
 ) -> tuple[np.ndarray, np.ndarray, bool]:
-    """ARPACK shift-invert: the ``count`` eigenpairs nearest ``shift``; ``converged`` flag."""
+    """ARPACK shift-invert: the ``count`` eigenpairs nearest ``shift``; ``converged`` flag.
+
+    The start vector is a fixed pseudo-random one (results repeat run to run), stripped of
+    its stationary component when ``stationary`` is given.
+    """
     n = W.shape[0]
-    ncv = min(n - 1, max(2 * count + 1, count + 24))
+    ncv = min(n, max(2 * count + 1, count + 24))  # ARPACK needs count + 1 < ncv <= n
+    start = np.random.default_rng(20261201).standard_normal(n)
+    if stationary is not None:
+        start -= stationary * start.sum()
     try:
         values, vectors = spla.eigs(W, k=count, sigma=shift, OPinv=inverse, which="LM",
-                                    tol=tolerance, ncv=ncv, maxiter=max(1000, 10 * n // ncv))
+                                    tol=tolerance, ncv=ncv, v0=start,
+                                    maxiter=max(1000, 10 * n // ncv))
         return values, vectors, True
     except spla.ArpackNoConvergence as failure:
         return failure.eigenvalues, failure.eigenvectors, False

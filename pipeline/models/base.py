@@ -115,23 +115,38 @@ def validate_block(block: RowBlock, n_states: int) -> float:
         return 0.0
     if block.indices.min() < 0 or block.indices.max() >= n_states:
         raise ModelError(f"row block {block.start}:{block.stop}: column index out of range")
-    bad = ~np.isfinite(block.data)
-    if bad.any():
-        row = _row_of(block, int(np.argmax(bad)))
-        raise ModelError(f"state {row}: rate is not finite ({block.data[bad][0]})")
+    data = block.data
+    # One reduction instead of a mask: a NaN or an infinity makes the sum non-finite (a sum
+    # of finite rates can overflow only when they are near 1e308; then the mask decides).
+    with np.errstate(over="ignore", invalid="ignore"):
+        total = np.add.reduce(data)
+    if not np.isfinite(total):
+        bad = ~np.isfinite(data)
+        if bad.any():
+            row = _row_of(block, int(np.argmax(bad)))
+            raise ModelError(f"state {row}: rate is not finite ({data[bad][0]})")
     # Negative entries must be diagonal ones. (A positive diagonal needs no test here: with
     # off-diagonals >= 0 it would make its column sum positive, which the assembly check of
     # column sums rejects.)
-    negative = np.flatnonzero(block.data < 0)
-    rows = block.start + np.searchsorted(block.indptr, negative, side="right") - 1
-    off_diagonal = block.indices[negative] != rows
+    negative = np.flatnonzero(data < 0)
+    if negative.size == 0:
+        return -0.0
+    indptr = block.indptr
+    if negative.size == rows and bool(
+        ((indptr[:-1] <= negative) & (negative < indptr[1:])).all()
+    ):
+        # The usual case, one negative entry in every row: the k-th one is in row k.
+        entry_rows = np.arange(block.start, block.stop, dtype=np.int64)
+    else:
+        entry_rows = block.start + np.searchsorted(indptr, negative, side="right") - 1
+    off_diagonal = block.indices[negative] != entry_rows
     if off_diagonal.any():
         index = negative[int(np.argmax(off_diagonal))]
         raise ModelError(
-            f"W[{_row_of(block, index)}, {block.indices[index]}] = {block.data[index]}: "
+            f"W[{_row_of(block, index)}, {block.indices[index]}] = {data[index]}: "
             "off-diagonal rates must be >= 0"
         )
-    return float(-block.data[negative].min(initial=0.0))
+    return float(-data[negative].min())
 
 
 def _row_of(block: RowBlock, entry: int) -> int:

@@ -131,53 +131,112 @@ class LatticeWalk(Model):
     def row_block(self, start: int, stop: int) -> RowBlock:
         """Rows ``start..stop-1`` of ``W`` (incoming rates and the diagonal)."""
         rows = stop - start
-        width = 2 * self.dims + 1
-        state = np.arange(start, stop, dtype=np.int64)
+        dims, disorder = self.dims, self.disorder
+        # Column layout per row: [from -s_0, ..., from -s_{d-1}, diagonal,
+        # from +s_{d-1}, ..., from +s_0]: sorted whenever no wrap-around occurs. Slots that
+        # are empty in every row are left out up front: a rate that is exactly zero (one-way
+        # hopping; times a disorder factor it stays zero) and the upper neighbour of a size-2
+        # ring, which is the lower one (that entry carries both rates).
+        merged = [self.boundary[a] == "periodic" and self.shape[a] == 2 for a in range(dims)]
+        order = []
+        for axis in range(dims):
+            u, v = self.forward[axis], self.backward[axis]
+            if merged[axis]:
+                stored = (u != 0.0 or v != 0.0) if disorder is not None else u + v != 0.0
+            else:
+                stored = u != 0.0
+            if stored:
+                order.append(("below", axis))
+        order.append(("diagonal", dims))
+        for axis in reversed(range(dims)):
+            if self.backward[axis] != 0.0 and not merged[axis]:
+                order.append(("above", axis))
+        slot = {key: position for position, key in enumerate(order)}
+        width, diagonal_slot = len(order), slot["diagonal", dims]
+        # Column arithmetic is done in the index dtype: shifted by up to a period, an index
+        # stays below 2 * n_states, which fits (see __init__).
+        state = np.arange(start, stop, dtype=self.index_dtype)
         columns = np.empty((rows, width), dtype=self.index_dtype)
         values = np.empty((rows, width), dtype=np.float64)
-        present = np.ones((rows, width), dtype=bool)
-        exit_rate = np.zeros(rows, dtype=np.float64)
-        # Column layout per row: [from -s_0, ..., from -s_{d-1}, diagonal,
-        # from +s_{d-1}, ..., from +s_0]: sorted whenever no wrap-around occurs.
-        diagonal_slot = self.dims
-        for axis in range(self.dims):
+        present = None  # made only when some rows miss an entry of a kept slot
+        template = np.empty(width)  # without disorder a slot holds one rate in every row
+        exit_interior = 0.0  # without disorder: exit rate of rows off every reflecting edge
+        exit_rate = np.zeros(rows) if disorder is not None else None
+        reflecting_edges = []
+        for axis in range(dims):
             size, stride = self.shape[axis], self.strides[axis]
             kind = self.boundary[axis]
-            coordinate = (state // stride) % size
-            at_low, at_high = coordinate == 0, coordinate == size - 1
-            below_slot, above_slot = axis, width - 1 - axis
-            # Incoming forward hop from the site below (x - 1), rate forward * factor.
-            source_below = state - stride
-            source_above = state + stride
-            if kind == "periodic":
-                source_below = np.where(at_low, state + (size - 1) * stride, source_below)
-                source_above = np.where(at_high, state - (size - 1) * stride, source_above)
+            period = size * stride
+            low = _edge_rows(start, stop, stride, size, high=False)  # coordinate 0
+            high = _edge_rows(start, stop, stride, size, high=True)  # coordinate size - 1
+            u, v = self.forward[axis], self.backward[axis]
+            # Incoming hops: forward from the site below (x - 1), backward from above (x + 1).
+            if disorder is None:
+                forward_in, backward_in = (u + v if merged[axis] else u), v
+                exit_interior += u
+                exit_interior += v
+                if kind == "reflecting":
+                    reflecting_edges += [low, high]
             else:
-                present[:, below_slot] = ~at_low
-                present[:, above_slot] = ~at_high
-            columns[:, below_slot] = source_below
-            columns[:, above_slot] = source_above
-            forward_in, backward_in, forward_out, backward_out = self._axis_rates(
-                axis, state, coordinate
-            )
-            values[:, below_slot] = forward_in
-            values[:, above_slot] = backward_in
-            # Exit rate of the row's own state: every hop that exists, off-edge hops of an
-            # absorbing axis included (they leave the system).
-            if kind == "reflecting":
-                forward_out = np.where(at_high, 0.0, forward_out)
-                backward_out = np.where(at_low, 0.0, backward_out)
-            exit_rate += forward_out
-            exit_rate += backward_out
-            if kind == "periodic" and size == 2:
-                # Both neighbours are the same site: one entry carries both rates.
-                values[:, below_slot] = values[:, below_slot] + values[:, above_slot]
-                present[:, above_slot] = False
+                coordinate = (state // stride) % size
+                forward_in, backward_in, forward_out, backward_out = self._axis_rates(
+                    axis, state, coordinate
+                )
+                if merged[axis]:
+                    forward_in = forward_in + backward_in
+                # Exit rate of the row's own state: every hop that exists, off-edge hops of
+                # an absorbing axis included (they leave the system).
+                if kind == "reflecting":
+                    forward_out = np.where(coordinate == size - 1, 0.0, forward_out)
+                    backward_out = np.where(coordinate == 0, 0.0, backward_out)
+                exit_rate += forward_out
+                exit_rate += backward_out
+            for name, shift, wrap, edge, rate in (
+                ("below", -stride, period, low, forward_in),
+                ("above", stride, -period, high, backward_in),
+            ):
+                position = slot.get((name, axis))
+                if position is None:
+                    continue
+                target = columns[:, position]
+                np.add(state, shift, out=target)
+                if kind == "periodic":
+                    target[edge] += wrap  # across the edge: the far end of the ring
+                else:
+                    if present is None:
+                        present = np.ones((rows, width), dtype=bool)
+                    present[edge, position] = False  # no site beyond the edge
+                if disorder is None:
+                    template[position] = rate
+                else:
+                    values[:, position] = rate
         columns[:, diagonal_slot] = state
-        values[:, diagonal_slot] = -exit_rate
-        # Rates that are exactly zero (one-way hopping) are not stored.
-        present &= values != 0.0
-        present[:, diagonal_slot] = True
+        if disorder is None:
+            template[diagonal_slot] = -exit_interior
+            values[...] = template
+            if reflecting_edges:
+                # Rows on a reflecting edge lack the hops off it: their exit rates are summed
+                # again in the same order as everywhere else (so bit for bit consistent).
+                edge_rows = np.unique(np.concatenate(reflecting_edges))
+                edge_state = start + edge_rows
+                exit_edge = np.zeros(edge_rows.size)
+                for axis in range(dims):
+                    size, stride = self.shape[axis], self.strides[axis]
+                    forward_out, backward_out = self.forward[axis], self.backward[axis]
+                    if self.boundary[axis] == "reflecting":
+                        coordinate = (edge_state // stride) % size
+                        forward_out = np.where(coordinate == size - 1, 0.0, forward_out)
+                        backward_out = np.where(coordinate == 0, 0.0, backward_out)
+                    exit_edge += forward_out
+                    exit_edge += backward_out
+                values[edge_rows, diagonal_slot] = -exit_edge
+        else:
+            values[:, diagonal_slot] = -exit_rate
+            if not values.all():
+                # Rates that are exactly zero (a zero factor) are not stored.
+                stored = values != 0.0
+                stored[:, diagonal_slot] = True
+                present = stored if present is None else present & stored
         return _compress(start, stop, columns, values, present)
 
     def exact(self):
@@ -260,19 +319,44 @@ class LatticeWalk(Model):
         return self.disorder.factors(self.dims, np.arange(start, stop, dtype=np.int64))
 
 
+def _edge_rows(start: int, stop: int, stride: int, size: int, high: bool) -> np.ndarray:
+    """Positions (from ``start``) of the states in ``start..stop-1`` whose coordinate along an
+    axis of this stride and size is 0, or ``size - 1`` when ``high``.
+
+    Those states form runs of ``stride`` consecutive states, one run every ``size * stride``
+    states; the work is proportional to the number of edge states, not of rows.
+    """
+    if stop <= start:
+        return np.empty(0, dtype=np.intp)
+    period = size * stride
+    offset = (size - 1) * stride if high else 0
+    first = start - (start - offset) % period  # the last run starting at or before start
+    if stride == 1:
+        begin = first if first == start else first + period
+        return np.arange(begin - start, stop - start, period, dtype=np.intp)
+    if first + period >= stop:  # a single run can meet the block
+        return np.arange(max(first, start) - start, min(first + stride, stop) - start,
+                         dtype=np.intp)
+    run_starts = np.arange(first, stop, period, dtype=np.intp)
+    lows = np.maximum(run_starts, start)
+    lengths = np.clip(np.minimum(run_starts + stride, stop) - lows, 0, None)
+    ends = np.cumsum(lengths)
+    return np.repeat(lows - start - (ends - lengths), lengths) + np.arange(ends[-1])
+
+
 def _compress(
     start: int,
     stop: int,
     columns: np.ndarray,
     values: np.ndarray,
-    present: np.ndarray,
+    present: np.ndarray | None,
 ) -> RowBlock:
-    """Pack a fixed-width stencil with a presence mask into CSR pieces."""
+    """Pack a fixed-width stencil into CSR pieces; ``present`` (None: every entry) masks out
+    the entries that do not exist."""
     rows, width = columns.shape
-    if present.all():
+    if present is None or present.all():
         indptr = np.arange(0, rows * width + 1, width, dtype=np.int64)
-        return RowBlock(start, stop, indptr, columns.ravel(), values.ravel())
-    counts = present.sum(axis=1)
+        return RowBlock(start, stop, indptr, columns.reshape(-1), values.reshape(-1))
     indptr = np.zeros(rows + 1, dtype=np.int64)
-    np.cumsum(counts, out=indptr[1:])
+    np.cumsum(np.count_nonzero(present, axis=1), out=indptr[1:])
     return RowBlock(start, stop, indptr, columns[present], values[present])

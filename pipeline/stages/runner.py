@@ -85,13 +85,16 @@ def run_pipeline(
     first = STAGES[STAGE_NAMES.index(selected[0])]
     if first.UPSTREAM is not None:
         _require_upstream(store, run, first.UPSTREAM, prints)
-    store.open_run(run, {
+    # The run's descriptive attrs are rewritten only after a stage commits, so a failed rerun
+    # never pairs the stored results with a config they were not computed from.
+    store.open_run(run, {})
+    run_attrs = {
         "config": config.resolved(),
         "config_source": config.source,
         "description": config.run.description,
         "model": model.describe(),
         "versions": software_versions(),
-    })
+    }
     verified = None
     for stage in STAGES:
         if stage.NAME not in selected:
@@ -99,12 +102,15 @@ def run_pipeline(
         log(f"stage {stage.NAME}: started")
         started = time.perf_counter()
         output = stage.run(ctx)
-        store.write_stage(run, stage.NAME, output.groups, prints[stage.NAME], output.record,
+        resolved = config.resolved()
+        record = {**output.record,
+                  "config": {name: resolved.get(name) for name in stage.CONFIG_SECTIONS}}
+        store.write_stage(run, stage.NAME, output.groups, prints[stage.NAME], record,
                           upstream=stage.UPSTREAM)
         seconds = time.perf_counter() - started
         timings = dict(store.run_attrs(run).get("timings", {}))
         timings[stage.NAME] = seconds
-        store.update_run_attrs(run, {"timings": timings})
+        store.update_run_attrs(run, {**run_attrs, "timings": timings})
         log(f"stage {stage.NAME}: committed in {seconds:.2f} s")
         if stage.NAME == "verify":
             verified = output.passed
