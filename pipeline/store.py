@@ -10,10 +10,14 @@ Layout (README.md, "Store layout", reproduces this)::
                                           timings  seconds per stage
                                           stages   {stage: {fingerprint, groups, finished}}
         assemble/                       attrs: n_states, nnz, norm1, column_sum_defect, ...
-        spectrum/eigenvalues            complex128 [mode]   slowest first
+        spectrum/eigenvalues            complex128 [mode]   slowest first; attrs: backend,
+                                          method, certified, certificate, group_complete
         spectrum/residuals              float64    [mode]   ||W v - l v|| / ||W||_1
+        spectrum/condition              float64    [mode]   eigenvalue condition numbers
+        spectrum/error_estimates        float64    [mode]   condition x residual x ||W||_1
         spectrum/vectors                complex128 [state, mode]   (solve.vectors = true)
-        stationary/distribution         float64    [state]  (conserving generators)
+        stationary/distribution         float64    [state]  (conserving generators); attrs:
+                                          method, residual, negative_mass
         verify/                         attrs: passed (bool), checks (list of {name, source,
                                           value, reference, tolerance, passed})
         report/                         attrs: summary (text)
