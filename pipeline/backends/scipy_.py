@@ -34,7 +34,7 @@ import scipy.sparse.linalg as spla
 from pipeline.backends.base import Backend, Modes, Operator, Stationary, check_column_sums
 from pipeline.backends.completeness import SpectrumEnclosure, farthest_enclosed_distance
 from pipeline.backends.conditioning import eigenvalue_conditions
-from pipeline.errors import BackendError, SolverError
+from pipeline.errors import BackendError, ModelError, SolverError
 from pipeline.models.base import Model, validate_block
 from pipeline.modes import grouping_tolerance, take_slowest
 from pipeline.progress import Progress, log
@@ -112,12 +112,16 @@ class ScipyBackend(Backend):
         data = data[:filled]
         W = sp.csr_matrix((data, indices, indptr), shape=(n, n))
         # Column sums as W^T 1 (a transposed sparse product, no copy of W). Off-diagonals are
-        # >= 0 and the diagonal <= 0 (checked per block), so |column| sums = sums - 2 diag.
-        # The vector of ones is then reused for the absolute sums (one n-vector less of fresh
-        # memory to fault in).
+        # >= 0 (checked per block) and the diagonal <= 0 (checked here), so |column| sums =
+        # sums - 2 diag. The vector of ones is then reused for the absolute sums (one
+        # n-vector less of fresh memory to fault in).
         buffer = np.ones(n)
         column_sums = W.T @ buffer
         diagonal = W.diagonal()
+        if n and diagonal.max() > 0:
+            state = int(np.argmax(diagonal))
+            raise ModelError(f"W[{state}, {state}] = {diagonal[state]}: the diagonal is minus "
+                             "an exit rate and must be <= 0")
         column_abs = np.multiply(diagonal, -2.0, out=buffer)
         column_abs += column_sums
         check = check_column_sums(column_sums, diagonal, model.conserving,
