@@ -176,8 +176,8 @@ class ScipyBackend(Backend):
                                               grouping_tolerance(all_values, scale))
         values, vectors = all_values[chosen], _normalize_columns(right[:, chosen])
         residuals = _residuals(W, values, vectors, scale)
-        condition = eigenvalue_conditions(values, vectors, all_values, left,
-                                          CLUSTER_FACTOR * scale)
+        condition = eigenvalue_conditions(all_values, right, all_values, left,
+                                          CLUSTER_FACTOR * scale, chosen)
         certificate = {"kind": "dense", "note": f"all {n} eigenvalues computed (LAPACK geev)"}
         return Modes(
             values=values.astype(np.complex128),
@@ -189,7 +189,7 @@ class ScipyBackend(Backend):
             group_complete=group_complete,
             seconds=time.perf_counter() - started,
             condition=condition,
-            error_estimates=condition * residuals * scale,
+            error_estimates=_error_estimates(condition, residuals, scale),
             info={"searched": n},
         )
 
@@ -310,10 +310,10 @@ class ScipyBackend(Backend):
             "rounds": rounds,
             "note": note,
         }
-        values, vectors, residuals = values[chosen], vectors[:, chosen], residuals[chosen]
         left_values, left = self._left_modes(operator, rounds[-1]["searched"], tolerance)
         condition = eigenvalue_conditions(values, vectors, left_values, left,
-                                          CLUSTER_FACTOR * scale)
+                                          CLUSTER_FACTOR * scale, chosen)
+        values, vectors, residuals = values[chosen], vectors[:, chosen], residuals[chosen]
         return Modes(
             values=values.astype(np.complex128),
             residuals=residuals,
@@ -324,7 +324,7 @@ class ScipyBackend(Backend):
             group_complete=group_complete,
             seconds=time.perf_counter() - started,
             condition=condition,
-            error_estimates=condition * residuals * scale,
+            error_estimates=_error_estimates(condition, residuals, scale),
             info={"searched": rounds[-1]["searched"], "inner_solves": solve_count["n"],
                   "lu_fill_ratio": operator.info.get("lu_fill_ratio")},
         )
@@ -415,6 +415,14 @@ class ScipyBackend(Backend):
         operator.handle["stationary"] = (p, method, steps)
         operator.info["stationary_seconds"] = time.perf_counter() - started
         return p, method, steps
+
+
+def _error_estimates(condition: np.ndarray, residuals: np.ndarray, scale: float) -> np.ndarray:
+    """First-order error bounds ``condition * residual * ||W||_1`` (inf where the condition
+    is unbounded, even for a zero residual)."""
+    with np.errstate(invalid="ignore", over="ignore"):
+        estimates = condition * residuals * scale
+    return np.where(np.isfinite(condition), estimates, np.inf)
 
 
 def _basis_capacity(n: int) -> int:
