@@ -263,7 +263,7 @@ def _write_array(group: Any, name: str, spec: ArraySpec) -> None:
 
 
 def _jsonable(value: Any) -> Any:
-    """Plain JSON data: numpy scalars to Python, tuples to lists, NaN/inf to None."""
+    """Plain JSON data: numpy scalars to Python, tuples to lists, inf to "inf", NaN to None."""
     if isinstance(value, dict):
         return {str(k): _jsonable(v) for k, v in value.items()}
     if isinstance(value, list | tuple):
@@ -276,6 +276,8 @@ def _jsonable(value: Any) -> Any:
         return int(value)
     if isinstance(value, np.floating | float):
         number = float(value)
+        if math.isinf(number):  # JSON has no infinity: kept as the strings "inf"/"-inf"
+            return "inf" if number > 0 else "-inf"
         return number if math.isfinite(number) else None
     if isinstance(value, complex | np.complexfloating):
         return [_jsonable(value.real), _jsonable(value.imag)]

@@ -86,7 +86,7 @@ def _model_line(model: dict) -> str:
 
 def _number(value) -> str:
     if value is None:
-        return "inf/none"
+        return "-"
     if isinstance(value, bool) or isinstance(value, str):
         return str(value)
     if isinstance(value, int | float):
