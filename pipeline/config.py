@@ -291,11 +291,11 @@ def parse_config(raw: dict[str, Any], source: str | None = None) -> Config:
     if name is None:
         raise ConfigError("run.name: missing; fix: add name = \"...\" under [run]")
     name = _string(name, "run.name")
-    if not re.fullmatch(r"[A-Za-z0-9][A-Za-z0-9_.\-]*", name):
-        raise ConfigError(
-            f"run.name: {name!r} must start with a letter or digit and hold only letters, "
-            "digits, '_', '-', '.'"
-        )
+    from pipeline.store import run_name_problem  # the store layout decides what a run is
+
+    problem = run_name_problem(name)
+    if problem is not None:
+        raise ConfigError(f"run.name: {name!r} {problem}")
     run = RunConfig(name=name, description=_string(run_table.get("description", ""),
                                                    "run.description"))
     if "model" not in raw:

@@ -4,6 +4,8 @@ from __future__ import annotations
 
 from typing import Any
 
+import numpy as np
+
 __all__ = ["estimate_resources"]
 
 
@@ -18,13 +20,19 @@ def _bytes(count: float) -> str:
 def estimate_resources(model: Any, config: Any) -> dict[str, str]:
     """Plain-text estimates (one process, scipy backend); LU fill-in is not predicted."""
     n = model.n_states
-    nnz = model.nnz_count() if hasattr(model, "nnz_count") else model.nnz_upper_bound(0, n)
-    index_bytes = 4 if n * 7 < 2**31 else 8
-    matrix = nnz * (8 + index_bytes) + (n + 1) * index_bytes
+    bound = model.nnz_upper_bound(0, n)
+    nnz = model.nnz_count() if hasattr(model, "nnz_count") else bound
+    # The widths the assembly uses: the model's column index dtype, and row pointers of the
+    # same width when every pointer fits (ScipyBackend.assemble).
+    index_bytes = np.dtype(getattr(model, "index_dtype", np.int64)).itemsize
+    pointer_bytes = 4 if index_bytes == 4 and max(bound, n) < 2**31 - 1 else 8
+    matrix = nnz * (8 + index_bytes) + (n + 1) * pointer_bytes
     solve = config.solve
     method = solve.method
     if method == "auto":
         method = "dense" if n <= solve.dense_limit else "shift-invert"
+    if method == "shift-invert" and min(solve.modes, n) >= n - 2:
+        method = "dense"  # Arnoldi could not search past the wanted modes (as solve does)
     info = {
         "states": f"{n}",
         "nonzeros": f"{nnz}",

@@ -82,6 +82,9 @@ def take_slowest(values: np.ndarray, count: int, tolerance: float) -> tuple[np.n
     kept = order[:count]
     if len(order) <= count or count == 0:
         return kept, True
-    last = np.asarray(values)[order[count - 1]].real
-    following = np.asarray(values)[order[count]].real
-    return kept, bool(last - following > tolerance)
+    # The groups of order_modes (chained real parts), not the distance of the two modes at
+    # the cut: inside a group the imaginary part orders, so neighbours there can differ in
+    # real part by more than the tolerance.
+    by_real = np.sort(np.asarray(values, dtype=complex).real)[::-1]
+    groups = real_part_groups(by_real, tolerance)
+    return kept, bool(groups[count - 1] != groups[count])

@@ -35,8 +35,10 @@ the new one is committed.
 
 from __future__ import annotations
 
+import json
 import math
 import os
+import re
 import shutil
 import time
 import uuid
@@ -55,6 +57,7 @@ __all__ = [
     "GroupData",
     "Store",
     "open_results",
+    "run_name_problem",
 ]
 
 LAYOUT_VERSION = 1
@@ -66,6 +69,9 @@ STAGE_GROUPS: dict[str, tuple[str, ...]] = {
     "report": ("report",),
 }
 STAGING = "_staging"
+#: what a run name may be: one directory under STORE/, never the root metadata file
+RUN_NAME = re.compile(r"[A-Za-z0-9][A-Za-z0-9_.\-]*")
+RESERVED_NAMES = ("zarr.json",)
 STATE_CHUNK = 1 << 20  # states per chunk along the state axis
 
 
@@ -94,7 +100,6 @@ class Store:
 
     def __init__(self, path: str | Path, create: bool = False) -> None:
         self.path = Path(path)
-        zarr = _zarr()
         if self.path.exists() and not self.path.is_dir():
             raise StoreError(f"store {str(self.path)!r}: is a file, not a store directory; "
                              "fix: choose another --store path")
@@ -104,17 +109,27 @@ class Store:
             ):
                 raise StoreError(f"store {str(self.path)!r}: exists and is not a zarr store; "
                                  "fix: choose another --store path")
-            self.root = zarr.open_group(str(self.path), mode="a", zarr_format=3)
+            self.root = self._open_root(mode="a")
             if "gapline_store" not in self.root.attrs:
                 self.root.attrs["gapline_store"] = LAYOUT_VERSION
         else:
             if not (self.path / "zarr.json").exists():
                 raise StoreError(f"store {str(self.path)!r}: not found; fix: check the path or "
                                  "run 'gapline run CONFIG --store PATH' first")
-            self.root = zarr.open_group(str(self.path), mode="r+", zarr_format=3)
+            self.root = self._open_root(mode="r+")
             if "gapline_store" not in self.root.attrs:
                 raise StoreError(f"store {str(self.path)!r}: a zarr store but not a gapline "
                                  "store (no 'gapline_store' attribute)")
+
+    def _open_root(self, mode: str):
+        zarr = _zarr()
+        try:
+            return zarr.open_group(str(self.path), mode=mode, zarr_format=3)
+        except (zarr.errors.ContainsArrayError, zarr.errors.NodeTypeValidationError,
+                json.JSONDecodeError, UnicodeDecodeError) as exc:
+            # An array, or metadata that is no zarr v3 group: someone else's data.
+            raise StoreError(f"store {str(self.path)!r}: not a zarr group ({type(exc).__name__})"
+                             "; fix: choose another --store path") from None
 
     # -- runs ---------------------------------------------------------------------------
 
@@ -124,7 +139,9 @@ class Store:
         return sorted(names)
 
     def has_run(self, run: str) -> bool:
-        return (self.path / run / "zarr.json").exists()
+        """True for a run group of this store (a valid run name, see :func:`run_name_problem`),
+        never for a group inside a run, the staging area or the root."""
+        return run_name_problem(run) is None and (self.path / run / "zarr.json").exists()
 
     def run_attrs(self, run: str) -> dict[str, Any]:
         if not self.has_run(run):
@@ -228,6 +245,16 @@ class Store:
     def _zarr_group(self, path: str):
         zarr = _zarr()
         return zarr.open_group(str(self.path / path), mode="r+", zarr_format=3)
+
+
+def run_name_problem(name: str) -> str | None:
+    """Why ``name`` cannot name a run (one line), or None when it can."""
+    if not RUN_NAME.fullmatch(name):
+        return ("must start with a letter or digit and hold only letters, digits, '_', '-', "
+                "'.'")
+    if name in RESERVED_NAMES:
+        return "is the name of the store's own metadata file; choose another name"
+    return None
 
 
 def _is_stale(stages: dict[str, Any], record: dict[str, Any]) -> bool:

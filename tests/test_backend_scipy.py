@@ -11,6 +11,7 @@ import pytest
 import scipy.linalg
 import scipy.sparse.linalg as spla
 
+import pipeline.backends.scipy_ as scipy_backend
 from pipeline.backends.scipy_ import ScipyBackend
 from pipeline.errors import SolverError
 from pipeline.models.lattice import Disorder, LatticeWalk
@@ -348,3 +349,66 @@ def test_stationary_of_sub_generator_raises(backend):
     model = LatticeWalk((6, 5), ("periodic", "absorbing"), (1.0, 0.5), (0.3, 0.5))
     with pytest.raises(SolverError, match="sub-generator"):
         backend.stationary(backend.assemble(model))
+
+
+# ---------------------------------------------------------------------------------------
+# Small problems near ARPACK's limit k <= n - 2, and the smallest searches.
+
+
+@pytest.mark.parametrize(
+    ("shape", "boundary", "count", "max_search"),
+    [
+        ((3,), "periodic", 1, 400),  # n - 2 = 1 = count: ARPACK would be asked for k = 0
+        ((3,), "reflecting", 1, 400),
+        ((4,), "periodic", 2, 400),  # search = count: one of a conjugate pair at the cut
+        ((5,), "reflecting", 3, 400),
+        ((60,), "periodic", 1, 1),  # max_search = modes = 1 on a conserving chain
+        ((60,), "absorbing", 1, 1),
+    ],
+)
+def test_shift_invert_smallest_searches(backend, shape, boundary, count, max_search):
+    # Mild bias off the ring: a chain of 60 with walls and u/v = 1.3/0.4 has an eigenvector
+    # condition near 1e15 (module CASES), far beyond what this test is about.
+    rates = ((1.3,), (0.4,)) if boundary == "periodic" else ((1.0,), (0.8,))
+    model = LatticeWalk(shape, (boundary,), *rates)
+    W = reference_generator(shape, (boundary,), *rates)
+    tol = tolerance_for(W)
+    values = slowest_first(np.linalg.eigvals(W), tol)  # LAPACK, ordered by the README rule
+    modes = backend.slowest_modes(backend.assemble(model), count, method="shift-invert",
+                                  max_search=max_search)
+    assert modes.values.size == count
+    # Ordered slowest first, the first member of a cut conjugate pair included.
+    np.testing.assert_allclose(modes.values, values[:count], atol=1e-9 * norm1(W))
+    assert modes.certified or max_search == count
+
+
+# ---------------------------------------------------------------------------------------
+# Stationary inverse iteration on a slow chain (gap of the order of the shift).
+
+
+def _slow_trap_ring(size=150_000):
+    # Random traps on a symmetric ring: W = W0 diag(tau), so p ∝ 1/tau (p0 uniform; common
+    # practice). The gap, about (2 pi / L)^2 / <1/tau> ~ 1.6e-9 here, is below the shift
+    # 1e-9 x (largest exit rate 3), so inverse iteration contracts by only ~0.65 per step,
+    # while the residual ||W p|| is blind to errors along the slow modes (it is tiny at once).
+    disorder = Disorder("sites", "uniform", 0.5, 1.5, 0.5, 3)
+    model = LatticeWalk((size,), ("periodic",), (1.0,), (1.0,), disorder)
+    tau = disorder.factors(model.dims, np.arange(size))
+    return model, (1 / tau) / (1 / tau).sum()
+
+
+def test_stationary_inverse_iteration_converges_on_a_slow_chain(backend):
+    model, expected = _slow_trap_ring()
+    result = backend.stationary(backend.assemble(model), dense_limit=0)
+    assert "inverse iteration" in result.method
+    assert np.abs(result.distribution - expected).sum() <= 1e-9  # verify.tolerance default
+    assert result.info["error_estimate"] <= 1e-9
+
+
+def test_stationary_error_estimate_is_honest_when_steps_run_out(backend, monkeypatch):
+    monkeypatch.setattr(scipy_backend, "STATIONARY_MAX_STEPS", 6)
+    model, expected = _slow_trap_ring()
+    result = backend.stationary(backend.assemble(model), dense_limit=0)
+    error = np.abs(result.distribution - expected).sum()
+    assert error > 1e-6  # six steps are not enough here
+    assert result.info["error_estimate"] >= error

@@ -142,6 +142,37 @@ def test_show_missing_run(finished):
     assert "no-such-run" in line and RUN in line
 
 
+@pytest.mark.parametrize("name", [f"{RUN}/spectrum", f"{RUN}/..", "_staging", "zarr.json"])
+def test_show_refuses_what_is_not_a_run(finished, name):
+    # Only names a config can give (run.name) are runs: not a group inside a run, not the
+    # store root, not the staging area.
+    directory, _, store, _ = finished
+    line = assert_one_line_user_error(run_cli("show", store, name, cwd=directory))
+    assert "not in store" in line and RUN in line
+
+
+ZARR_ARRAY = (
+    '{"zarr_format": 3, "node_type": "array", "shape": [1], "data_type": "float64", '
+    '"chunk_grid": {"name": "regular", "configuration": {"chunk_shape": [1]}}, '
+    '"chunk_key_encoding": {"name": "default"}, "fill_value": 0.0, '
+    '"codecs": [{"name": "bytes", "configuration": {"endian": "little"}}]}'
+)
+
+
+@pytest.mark.parametrize("command", ["show", "run"])
+@pytest.mark.parametrize("metadata", [ZARR_ARRAY, "{"], ids=["zarr-array", "broken-json"])
+def test_store_that_is_not_a_zarr_group(tmp_path, command, metadata):
+    # A zarr v3 array (zarr v3 specification: node_type "array") or unreadable metadata where
+    # the store should be: one line naming the store, not a zarr traceback.
+    store = tmp_path / "other.zarr"
+    store.mkdir()
+    (store / "zarr.json").write_text(metadata)
+    args = ["show", store] if command == "show" else [
+        "run", ring_config(tmp_path, "x", 10, 3), "--store", store]
+    line = assert_one_line_user_error(run_cli(*args, cwd=tmp_path))
+    assert "other.zarr" in line
+
+
 def test_unknown_command(tmp_path):
     assert_one_line_user_error(run_cli("frobnicate", cwd=tmp_path))
 
@@ -186,3 +217,13 @@ def test_scipy_backend_refuses_to_run_duplicated_under_mpi(tmp_path):
                      env_extra={"OMPI_COMM_WORLD_SIZE": "2"})
     line = assert_one_line_user_error(result)
     assert "MPI" in line and "scipy" in line
+
+
+def test_lognormal_disorder_out_of_float_range_is_one_line(tmp_path):
+    # exp(sigma z) for a standard normal z leaves the float64 range (about e^+-709; IEEE 754
+    # double, common practice) at sigma = 1000 already for |z| > 0.71: most sites of a ring.
+    extra = '[model.disorder]\non = "bonds"\nlaw = "lognormal"\nsigma = 1000.0\n'
+    config = ring_config(tmp_path, "wild", 20, 3)
+    config.write_text(config.read_text().replace("[solve]", extra + "\n[solve]"))
+    line = assert_one_line_user_error(run_cli("run", config, "--store", "s.zarr", cwd=tmp_path))
+    assert "model.disorder.sigma" in line

@@ -152,6 +152,12 @@ BAD_FIELDS = {
         LATTICE_2D + "[solve\nmodes = 3\n",
         r"invalid TOML",
     ),
+    # A run is the directory STORE/RUN of a zarr v3 store, whose root metadata file is
+    # STORE/zarr.json (zarr v3 specification, "Storage": node metadata in zarr.json).
+    "run name of the root metadata": (
+        '[run]\nname = "zarr.json"\n' + LATTICE_2D,
+        r"^run\.name: 'zarr\.json' ",
+    ),
 }
 
 

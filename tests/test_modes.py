@@ -93,3 +93,15 @@ def test_grouping_tolerance_formula():
     assert grouping_tolerance(values, 1e6) == pytest.approx(1e-6)
     assert grouping_tolerance(np.array([-1.0, -1.0]), 100.0) == pytest.approx(1e-10)
     assert grouping_tolerance(np.array([]), 0.0) > 0
+
+
+def test_take_slowest_reports_a_cut_inside_a_chained_group():
+    # Real parts -1.0, -1.9, -2.8 with tolerance 1.0 form one group by chaining (each step is
+    # within the tolerance; pipeline.modes docstring: consecutive real parts). Inside the group
+    # the imaginary part orders them: -1.0 (0j), -2.8 (1j), -1.9 (2j). Cutting after the first
+    # splits the group, although the next *ordered* mode is 1.8 > tolerance away in real part.
+    values = np.array([-1.0 + 0j, -1.9 + 2j, -2.8 + 1j])
+    indices, group_complete = take_slowest(values, 1, 1.0)
+    np.testing.assert_array_equal(values[indices], [-1.0])
+    assert group_complete is False
+    assert take_slowest(values, 3, 1.0)[1] is True

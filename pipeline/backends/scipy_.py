@@ -22,6 +22,7 @@ normalization for small N.
 
 from __future__ import annotations
 
+import math
 import os
 import time
 from typing import Any
@@ -37,14 +38,15 @@ from pipeline.backends.conditioning import eigenvalue_conditions
 from pipeline.errors import BackendError, ModelError, SolverError
 from pipeline.models.base import Model, validate_block
 from pipeline.modes import grouping_tolerance, take_slowest
-from pipeline.progress import Progress, log
+from pipeline.progress import Progress, log, warn
 
 __all__ = ["ScipyBackend", "mpi_world_size"]
 
 SHIFT_FACTOR = 1e-9
 DENSE_MEMORY_LIMIT = 8 * 2**30  # bytes a dense solve may take before we refuse
 RESIDUAL_CEILING = 1e-6  # above this a mode is not trusted for the certificate
-STATIONARY_MAX_STEPS = 60
+STATIONARY_MAX_STEPS = 600
+STATIONARY_TARGET = 1e-13  # 1-norm error of the stationary vector inverse iteration aims at
 BASIS_MEMORY_FRACTION = 0.25  # of physical memory, for the Arnoldi basis
 CLUSTER_FACTOR = 1e-8  # eigenvalues closer than this times ||W||_1 are one cluster
 
@@ -153,8 +155,11 @@ class ScipyBackend(Backend):
         count = min(count, n)
         if method == "auto":
             method = "dense" if n <= dense_limit else "shift-invert"
-        if method == "shift-invert" and count > n - 2:
-            log(f"solve: {count} modes of {n} states exceed what Arnoldi returns; using dense")
+        if method == "shift-invert" and count >= n - 2:
+            # Arnoldi returns at most n - 2 modes: the search could not reach past the last
+            # wanted one, so it could never be certified (nor see the rest of its group).
+            log(f"solve: {count} modes of {n} states leave Arnoldi (at most n - 2 = {n - 2}) "
+                "no room to certify; using dense")
             method = "dense"
         if method == "dense":
             return self._dense_modes(operator, count, vectors)
@@ -371,8 +376,10 @@ class ScipyBackend(Backend):
         p /= p.sum()
         residual = _stationary_residual(W, p, operator.check.norm1)
         seconds = operator.info.get("stationary_seconds", 0.0) + time.perf_counter() - started
-        return Stationary(p, residual, negative_mass, method, seconds,
-                          info={"iterations": steps})
+        info: dict[str, Any] = {"iterations": steps}
+        if "stationary_error_estimate" in operator.info:
+            info["error_estimate"] = operator.info["stationary_error_estimate"]
+        return Stationary(p, residual, negative_mass, method, seconds, info=info)
 
     def _stationary_vector(
         self, operator: Operator, dense_limit: int = 1024
@@ -398,23 +405,51 @@ class ScipyBackend(Backend):
             method, steps = "dense solve with the normalization row", 0
         else:
             shift, lu = self._factorize(operator)
-            p = np.full(n, 1.0 / n)
-            steps = 0
-            # Each step shrinks mode k by sigma/|lambda_k|: a handful of steps unless the gap
-            # is close to sigma (huge systems); stop when the residual no longer improves.
-            previous = np.inf
-            while steps < STATIONARY_MAX_STEPS:
-                steps += 1
-                p = lu.solve(p)
-                p /= p.sum()
-                residual = _stationary_residual(W, p, operator.check.norm1)
-                if residual < 1e-15 or residual > 0.5 * previous:
-                    break
-                previous = residual
+            p, steps, estimate = _inverse_iteration(lu, n)
             method = f"inverse iteration with the LU of W - {shift:.2e} I"
+            operator.info["stationary_error_estimate"] = estimate
+            if not estimate <= STATIONARY_TARGET:
+                warn(f"solve.stationary: inverse iteration stopped after {steps} steps with an "
+                     f"estimated error of {estimate:.1e} (sum of |p - p_exact|): the gap is "
+                     f"close to the shift {shift:.1e}")
         operator.handle["stationary"] = (p, method, steps)
         operator.info["stationary_seconds"] = time.perf_counter() - started
         return p, method, steps
+
+
+def _inverse_iteration(lu: Any, n: int) -> tuple[np.ndarray, int, float]:
+    """Stationary vector by inverse iteration with the LU of ``W - sigma I``.
+
+    Each step shrinks the component of mode k by ``sigma / |lambda_k - sigma|``, so the slow
+    modes set the pace when the gap is near sigma. The residual ``||W p||`` is blind to them
+    (an error e along mode 1 leaves a residual |lambda_1| e), so convergence is judged on the
+    change between steps: once the contraction ``rho`` per step has settled, the error is about
+    ``rho / (1 - rho) x change`` (a posteriori bound of a contraction; from memory), doubled
+    for safety. Returns ``(p, steps, error estimate)``, the estimate in the 1-norm (``inf``
+    when the contraction never settled).
+    """
+    p = np.full(n, 1.0 / n)
+    steps, change, ratios = 0, np.inf, [np.nan, np.nan]
+    estimate = np.inf
+    while steps < STATIONARY_MAX_STEPS:
+        steps += 1
+        following = lu.solve(p)
+        following /= following.sum()
+        previous, change = change, float(np.abs(following - p).sum())
+        p = following
+        if change >= previous:  # no progress any more: the rounding floor of one step
+            estimate = min(estimate, change) if np.isfinite(estimate) else change
+            break
+        ratios = [ratios[1], change / previous if np.isfinite(previous) else np.nan]
+        settled = ratios[1] < 1 and abs(ratios[1] - ratios[0]) <= 0.1 * ratios[1]
+        estimate = 2 * change * ratios[1] / (1 - ratios[1]) if settled else np.inf
+        if change <= 1e-15 and settled:
+            break
+        if settled and estimate > STATIONARY_TARGET:
+            needed = math.log(STATIONARY_TARGET / estimate) / math.log(ratios[1])
+            if steps + needed > STATIONARY_MAX_STEPS:
+                break  # cannot get there within the budget: report what it is
+    return p, steps, float(estimate)
 
 
 def _error_estimates(condition: np.ndarray, residuals: np.ndarray, scale: float) -> np.ndarray:
@@ -451,6 +486,8 @@ def _arpack_nearest(
     its stationary component when ``stationary`` is given.
     """
     n = W.shape[0]
+    if count <= 0:  # nothing beyond the deflated stationary mode was asked for
+        return np.zeros(0, dtype=complex), np.zeros((n, 0), dtype=complex), True
     ncv = min(n, max(2 * count + 1, count + 24))  # ARPACK needs count + 1 < ncv <= n
     start = np.random.default_rng(20261201).standard_normal(n)
     if stationary is not None:

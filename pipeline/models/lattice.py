@@ -23,6 +23,7 @@ from typing import Any
 
 import numpy as np
 
+from pipeline.errors import ModelError
 from pipeline.models.base import Model, RowBlock
 
 __all__ = ["LatticeWalk"]
@@ -57,8 +58,14 @@ class Disorder:
             if self.law == "uniform":
                 table[row] = generator.uniform(self.low, self.high, _FACTOR_CHUNK)
             else:
-                table[row] = np.exp(self.sigma * generator.standard_normal(_FACTOR_CHUNK))
-        return table[position.reshape(sites.shape), sites % _FACTOR_CHUNK]
+                with np.errstate(over="ignore", under="ignore"):
+                    table[row] = np.exp(self.sigma * generator.standard_normal(_FACTOR_CHUNK))
+        factors = table[position.reshape(sites.shape), sites % _FACTOR_CHUNK]
+        if self.law == "lognormal" and not (np.isfinite(factors).all() and factors.all()):
+            raise ModelError(
+                f"model.disorder.sigma: {self.sigma:g} puts factors exp(sigma z) outside the "
+                "float64 range (an infinite or zero rate); fix: a smaller sigma")
+        return factors
 
 
 class LatticeWalk(Model):
