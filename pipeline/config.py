@@ -242,6 +242,8 @@ def apply_override(raw: dict[str, Any], item: str) -> None:
     parts = key.split(".")
     if len(parts) < 2:
         raise ConfigError(f"--set {key!r}: expected SECTION.FIELD, e.g. model.size")
+    if not isinstance(value, str) and _declared_kind(parts) == "string":
+        value = text.strip()  # run.name=2024-06-01 is a name, not a TOML date
     node: Any = raw
     for depth, part in enumerate(parts):
         match = _KEY_PART.match(part)
@@ -269,6 +271,17 @@ def apply_override(raw: dict[str, Any], item: str) -> None:
             current[position] = value
         else:
             node = current[position]
+
+
+def _declared_kind(parts: list[str]) -> str | None:
+    """The schema type of the field ``parts`` (e.g. ``["run", "name"]``), or None."""
+    *table, name = parts
+    if table == ["model"]:
+        sections = [s for s in SCHEMA if s == "model" or s.startswith("model:")]
+    else:
+        sections = [".".join(table)]
+    kinds = {SCHEMA[s][name][0] for s in sections if name in SCHEMA.get(s, {})}
+    return kinds.pop() if len(kinds) == 1 else None
 
 
 def fingerprint(data: Any) -> str:

@@ -17,7 +17,7 @@ Layout (README.md, "Store layout", reproduces this)::
         spectrum/error_estimates        float64    [mode]   condition x residual x ||W||_1
         spectrum/vectors                complex128 [state, mode]   (solve.vectors = true)
         stationary/distribution         float64    [state]  (conserving generators); attrs:
-                                          method, residual, negative_mass
+                                          method, residual, negative_mass, error_estimate
         verify/                         attrs: passed (bool), checks (list of {name, source,
                                           value, reference, tolerance, passed})
         report/                         attrs: summary (text)

@@ -149,6 +149,8 @@ def reference_rows(shape, boundary, forward, backward, states, disorder=None) ->
     def factor(stream, site):
         if disorder is None:
             return 1.0
+        if n > 1 << 22:  # a huge lattice: look the site up alone, never all n of them
+            return float(disorder.factors(stream, np.array([site]))[0])
         if stream not in tables:
             tables[stream] = disorder.factors(stream, np.arange(n))
         return float(tables[stream][site])

@@ -203,3 +203,17 @@ def test_describe_schema_mentions_every_field():
             assert kind in reference
             # Meanings may have '|' escaped for Markdown tables.
             assert meaning.replace("|", "\\|") in reference
+
+
+@pytest.mark.parametrize("text", ["2024-06-01", "1e3", "inf", "true", "42"])
+def test_override_of_a_string_field_keeps_the_text(tmp_path, text):
+    # In TOML, 2024-06-01 is a local date, 1e3 and inf are floats, true a boolean (TOML 1.0
+    # specification, "Local Date", "Float", "Boolean"): as the value of a field declared
+    # "string" (run.name, store.path) they can only mean the text itself.
+    path = write_config(tmp_path, "ring", ISSUE_EXAMPLE)
+    config = load_config(path, [f"run.name={text}", f"store.path={text}"])
+    assert config.run.name == text
+    assert config.store.path == text
+    # Typed fields keep the TOML reading.
+    with pytest.raises(ConfigError, match=r"^solve\.modes: expected a whole number"):
+        load_config(path, ["solve.modes=2024-06-01"])

@@ -178,6 +178,50 @@ def test_blocks_of_a_large_lattice_against_reference_rows(case, disorder):
         assert block.nnz == int(off_diagonal.sum()) + (stop - start)
 
 
+HUGE = {
+    # 2^31 + 5 sites: the column indices no longer fit int32 (2^31 - 1, common practice).
+    "ring-2^31+5": ((2**31 + 5,), ("periodic",), (1.0,), (0.5,)),
+    # 10^9 sites, 7 nonzeros per row: 7e9 > 2^31 - 1.
+    "cube-1000": ((1000, 1000, 1000), ("periodic", "reflecting", "absorbing"), (1.0, 0.6, 0.9),
+                  (0.5, 0.8, 1.1)),
+}
+HUGE_WINDOWS = [(0, 3), (1 << 20, (1 << 20) + 2), (2**31 - 2, 2**31 + 2), (-3, None)]
+
+
+def _entries(matrix: sp.csr_matrix) -> dict[tuple[int, int], float]:
+    # Entry by entry: sparse arithmetic on 10^9 columns would allocate per column.
+    coo = matrix.tocoo()
+    out: dict[tuple[int, int], float] = {}
+    for row, col, value in zip(coo.row.tolist(), coo.col.tolist(), coo.data.tolist(),
+                               strict=True):
+        out[row, col] = out.get((row, col), 0.0) + value
+    return out
+
+
+@pytest.mark.parametrize("disorder", [None, "bonds-uniform", "sites-lognormal"])
+@pytest.mark.parametrize("case", sorted(HUGE))
+def test_windows_of_a_huge_lattice_use_64_bit_indices(case, disorder):
+    # Rows of lattices far too large to assemble, against the incoming-side reference of the
+    # same rows; the window across state 2^31 exercises indices past the int32 range.
+    shape, boundary, forward, backward = HUGE[case]
+    law = None if disorder is None else DISORDERS[disorder]
+    model = LatticeWalk(shape, boundary, forward, backward, law)
+    n = model.n_states
+    for start, stop in HUGE_WINDOWS:
+        start, stop = (n + start, n) if stop is None else (start, min(stop, n))
+        if start >= stop:
+            continue
+        block = model.row_block(start, stop)
+        assert block.indices.dtype == np.int64
+        got = sp.csr_matrix((block.data, block.indices, block.indptr), shape=(stop - start, n))
+        expected = reference_rows(shape, boundary, forward, backward, range(start, stop), law)
+        got, expected = _entries(got), _entries(expected)
+        assert got.keys() == {key for key, value in expected.items()
+                              if value != 0 or key[1] == key[0] + start}, (start, stop)
+        for key, value in expected.items():
+            assert got.get(key, 0.0) == pytest.approx(value, rel=1e-14, abs=0), (key, start)
+
+
 def test_nnz_count_large_lattice_without_assembling_everything():
     model = LatticeWalk((30, 2, 17), ("absorbing", "periodic", "reflecting"), (1.0, 0.5, 0.0),
                         (0.2, 0.5, 0.9))

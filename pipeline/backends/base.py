@@ -129,7 +129,7 @@ class Backend(ABC):
         """The ``count`` eigenvalues of largest real part, with certificates."""
 
     @abstractmethod
-    def stationary(self, operator: Operator) -> Stationary:
+    def stationary(self, operator: Operator, dense_limit: int = 1024) -> Stationary:
         """The stationary distribution of a conserving generator."""
 
 

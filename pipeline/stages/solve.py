@@ -69,7 +69,7 @@ def run(ctx: RunContext) -> StageOutput:
         spectrum.arrays["vectors"] = ArraySpec(modes.vectors, ("state", "mode"))
     groups = {"spectrum": spectrum}
     if settings.stationary and operator.check.conserving:
-        result = backend.stationary(operator)
+        result = backend.stationary(operator, dense_limit=settings.dense_limit)
         groups["stationary"] = GroupData(
             arrays={"distribution": ArraySpec(result.distribution, ("state",))},
             attrs={

@@ -8,7 +8,6 @@ from __future__ import annotations
 
 import numpy as np
 
-from pipeline.modes import grouping_tolerance
 from pipeline.stages.base import RunContext, StageOutput
 from pipeline.store import GroupData
 from pipeline.verification.checks import Check, compare_multisets, spectral_gap
@@ -61,9 +60,11 @@ def run(ctx: RunContext) -> StageOutput:
     if exact_values is not None:
         source = "; ".join(s for s in exact.sources if "detailed balance" not in s
                            and "p = p0" not in s)
-        # Exact values tied with the last one (to the mode-ordering tolerance, or to the
-        # matching tolerance) finish its group and may stay unmatched; no other may.
-        tie = max(grouping_tolerance(exact_values, norm1), settings.tolerance * norm1)
+        # Exact values tied with the last one finish its group and may stay unmatched; no
+        # other may. Ties to 1e-8 ||W||_1, which bounds the ordering tolerance (README:
+        # max(1e-8 spread, 1e-12 ||W||_1), real parts lie in [-||W||_1, 0]), or to the
+        # matching tolerance.
+        tie = max(1e-8 * norm1, settings.tolerance * norm1)
         distance = compare_multisets(values, exact_values, tie) / norm1
         checks.append(Check("spectrum.slowest_set", source, distance, 0.0, settings.tolerance,
                             distance <= settings.tolerance))
