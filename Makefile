@@ -15,7 +15,7 @@ demo: venv
 	$(BIN)/gapline show demo-store.zarr
 
 lint: venv
-	$(BIN)/ruff check pipeline tests benchmarks
+	$(BIN)/ruff check .
 
 test: lint
 	$(BIN)/python -m pytest

@@ -132,11 +132,11 @@ def _show(args: argparse.Namespace) -> int:
 
 
 def _run_row(store, run: str) -> str:
-    from pipeline.stages.report import _model_line
+    from pipeline.stages.report import model_line
     from pipeline.verification.checks import spectral_gap
 
     attrs = store.run_attrs(run)
-    model = _model_line(attrs.get("model", {}))
+    model = model_line(attrs.get("model", {}))
     states = attrs.get("model", {}).get("n_states", "?")
     spectrum = store.group(run, "spectrum", required=False)
     backend = certified = gap_text = "-"

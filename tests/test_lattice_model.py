@@ -154,15 +154,20 @@ BIG = {
 WINDOWS = [(0, 1), (1, 700), (599, 1801), (1234, 2345), (5999, 6001), (23_999, 24_000)]
 
 
+def _window_model(parameters, disorder):
+    """(disorder law, model, state count) of a lattice used only through row windows."""
+    law = None if disorder is None else DISORDERS[disorder]
+    model = LatticeWalk(*parameters, law)
+    return law, model, model.n_states
+
+
 @pytest.mark.parametrize("disorder", [None, "bonds-uniform", "sites-lognormal"])
 @pytest.mark.parametrize("case", sorted(BIG))
 def test_blocks_of_a_large_lattice_against_reference_rows(case, disorder):
     # Blocks that start and stop inside runs of edge states, on lattices too large for a
     # dense reference: each block against the incoming-side reference of the same rows.
     shape, boundary, forward, backward = BIG[case]
-    law = None if disorder is None else DISORDERS[disorder]
-    model = LatticeWalk(shape, boundary, forward, backward, law)
-    n = model.n_states
+    law, model, n = _window_model(BIG[case], disorder)
     for start, stop in WINDOWS:
         if start >= n:
             continue
@@ -204,9 +209,7 @@ def test_windows_of_a_huge_lattice_use_64_bit_indices(case, disorder):
     # Rows of lattices far too large to assemble, against the incoming-side reference of the
     # same rows; the window across state 2^31 exercises indices past the int32 range.
     shape, boundary, forward, backward = HUGE[case]
-    law = None if disorder is None else DISORDERS[disorder]
-    model = LatticeWalk(shape, boundary, forward, backward, law)
-    n = model.n_states
+    law, model, n = _window_model(HUGE[case], disorder)
     for start, stop in HUGE_WINDOWS:
         start, stop = (n + start, n) if stop is None else (start, min(stop, n))
         if start >= stop:

@@ -8,6 +8,7 @@ checked by Sylvester/Haynsworth inertia:  #eig(Q_perp^T S Q_perp) > t  =  n_-(tI
 G = Q^T (tI - S)^{-1} Q  (k x k).  n_-(tI - S) from the LDL^T inertia of MUMPS.
 """
 import time
+
 import numpy as np
 from petsc4py import PETSc
 

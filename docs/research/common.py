@@ -1,8 +1,12 @@
-import os, time, resource
+import os
+import resource
+
 os.environ["GAPLINE_PROGRESS"] = "off"
 import numpy as np
-from pipeline.models.lattice import LatticeWalk
+
 from pipeline.backends.scipy_ import ScipyBackend
+from pipeline.models.lattice import LatticeWalk
+
 
 def model(L):
     return LatticeWalk((L, L), ("periodic", "periodic"), (1.0, 0.8), (0.6, 0.8))

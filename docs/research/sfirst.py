@@ -5,15 +5,19 @@
 4. Rayleigh-Ritz of W on the span  -> W eigenvalues (exact when W is normal).
 5. Certificate: LDL^T(tI - S) inertia, G = Q^T (tI-S)^-1 Q (block solve), residual ||WQ - QT||.
 usage: sfirst.py L [nev] [petsc options]"""
-import sys, time
+import sys
+import time
+
 import slepc4py
+
 L = int(sys.argv[1]); NEV = int(sys.argv[2]) if len(sys.argv) > 2 and not sys.argv[2].startswith("-") else 20
 rest = [a for a in sys.argv[2:] if not (a == str(NEV) and sys.argv.index(a) == 2)]
 slepc4py.init(sys.argv[:1] + rest)
+from cert import certify, sym_part
+from common import *
 from petsc4py import PETSc
 from slepc4py import SLEPc
-from common import *
-from cert import sym_part, certify
+
 P = lambda *a: PETSc.Sys.Print(*a)
 K = 13
 A = petsc_mat(L); n = A.getSize()[0]

@@ -97,19 +97,23 @@ class LatticeExact:
                 kind == "reflecting" or u == v
                 for kind, u, v in zip(model.boundary, model.forward, model.backward, strict=True)
             )
-        sources = []
+        spectrum_sources: list[str] = []
         if self.has_spectrum:
             kinds = set(model.boundary)
-            sources += [{"periodic": RING_SOURCE, "reflecting": REFLECTING_SOURCE,
-                         "absorbing": ABSORBING_SOURCE}[k] for k in sorted(kinds)]
+            spectrum_sources += [{"periodic": RING_SOURCE, "reflecting": REFLECTING_SOURCE,
+                                  "absorbing": ABSORBING_SOURCE}[k] for k in sorted(kinds)]
             if model.dims > 1:
-                sources.append(KRONECKER_SOURCE)
+                spectrum_sources.append(KRONECKER_SOURCE)
+        stationary_sources: list[str] = []
         if self.has_stationary:
-            sources.append(STATIONARY_SOURCE)
+            stationary_sources.append(STATIONARY_SOURCE)
             if disorder is not None:
-                sources.append(TRAP_SOURCE if disorder.on == "sites" else
-                               "random barriers keep detailed balance (common practice)")
-        self.sources = tuple(sources)
+                stationary_sources.append(TRAP_SOURCE if disorder.on == "sites" else
+                                          "random barriers keep detailed balance "
+                                          "(common practice)")
+        self.spectrum_sources = tuple(spectrum_sources)
+        self.stationary_sources = tuple(stationary_sources)
+        self.sources = self.spectrum_sources + self.stationary_sources
         self._trap_sum: float | None = None
 
     @classmethod

@@ -43,9 +43,16 @@ class RowBlock:
 
 
 class ExactResults(Protocol):
-    """Known results for a model, used by ``verify`` and the tests."""
+    """Known results for a model, used by ``verify`` and the tests.
+
+    ``spectrum_sources`` and ``stationary_sources`` cite where each result comes from;
+    ``has_stationary`` says whether :meth:`stationary` knows the law.
+    """
 
     sources: tuple[str, ...]
+    spectrum_sources: tuple[str, ...]
+    stationary_sources: tuple[str, ...]
+    has_stationary: bool
 
     def slowest_eigenvalues(self, count: int) -> np.ndarray:
         """At least ``count`` slowest eigenvalues, ordered slowest first; the list is

@@ -26,7 +26,7 @@ def run(ctx: RunContext) -> StageOutput:
 def summarize(store: Store, run: str) -> str:
     attrs = store.run_attrs(run)
     model = attrs.get("model", {})
-    lines = [f"run {run}: {_model_line(model)}"]
+    lines = [f"run {run}: {model_line(model)}"]
     assembled = store.group(run, "assemble", required=False)
     if assembled is not None:
         a = assembled.attrs
@@ -75,7 +75,7 @@ def summarize(store: Store, run: str) -> str:
     return "\n".join(lines)
 
 
-def _model_line(model: dict) -> str:
+def model_line(model: dict) -> str:
     if model.get("model") == "lattice":
         shape = "x".join(str(s) for s in model.get("shape", []))
         kinds = ", ".join(model.get("boundary", []))

@@ -58,8 +58,7 @@ def run(ctx: RunContext) -> StageOutput:
     exact_values = exact.slowest_eigenvalues(values.size) if exact is not None else None
     certified = bool(spectrum_attrs.get("certified"))
     if exact_values is not None:
-        source = "; ".join(s for s in exact.sources if "detailed balance" not in s
-                           and "p = p0" not in s)
+        source = "; ".join(exact.spectrum_sources)
         # Exact values tied with the last one finish its group and may stay unmatched; no
         # other may. Ties to 1e-8 ||W||_1, which bounds the ordering tolerance (README:
         # max(1e-8 spread, 1e-12 ||W||_1), real parts lie in [-||W||_1, 0]), or to the
@@ -113,10 +112,9 @@ def run(ctx: RunContext) -> StageOutput:
                             "a probability is >= 0 (mass clipped from rounding noise)",
                             negative, 0.0, settings.tolerance,
                             negative <= settings.tolerance and minimum >= 0))
-        if exact is not None and getattr(exact, "has_stationary", False):
+        if exact is not None and exact.has_stationary:
             difference = _l1_difference(distribution, exact)
-            source = "; ".join(s for s in exact.sources if "detailed balance" in s
-                               or "p = p0" in s or "barriers" in s)
+            source = "; ".join(exact.stationary_sources)
             checks.append(Check("stationary.exact", source, difference, 0.0, settings.tolerance,
                                 difference <= settings.tolerance))
     passed = all(check.passed for check in checks)
