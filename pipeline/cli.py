@@ -64,21 +64,26 @@ def main(argv: list[str] | None = None) -> int:
             print(describe_schema())
             return EXIT_OK
     except GaplineError as error:
-        print(f"gapline: error: {error}", file=sys.stderr)
+        _say(f"gapline: error: {error}")
         return EXIT_USER_ERROR
     except MemoryError:
-        print("gapline: error: out of memory; fix: fewer states or modes (see 'gapline check')",
-              file=sys.stderr)
+        _say("gapline: error: out of memory; fix: fewer states or modes (see 'gapline check')")
         return EXIT_USER_ERROR
     except OSError as error:
-        print(f"gapline: error: {error.strerror or error}: {error.filename or ''}".rstrip(": "),
-              file=sys.stderr)
+        _say(f"gapline: error: {error.strerror or error}: {error.filename or ''}".rstrip(": "))
         return EXIT_USER_ERROR
     except KeyboardInterrupt:
-        print("gapline: interrupted; committed stages are kept, the interrupted one is not",
-              file=sys.stderr)
+        _say("gapline: interrupted; committed stages are kept, the interrupted one is not")
         return EXIT_INTERRUPTED
     return EXIT_USER_ERROR
+
+
+def _say(message: str) -> None:
+    """An error line on stderr, once per job (rank 0 under MPI: every rank has the same)."""
+    from pipeline.parallel import world
+
+    if world().is_root:
+        print(message, file=sys.stderr)
 
 
 def _run(args: argparse.Namespace) -> int:
@@ -88,8 +93,7 @@ def _run(args: argparse.Namespace) -> int:
     config = load_config(args.config, args.overrides)
     outcome = run_pipeline(config, store_path=args.store, start=args.start, only=args.only)
     if outcome.verified is False:
-        print(f"gapline: verification FAILED for run {outcome.run!r} (see the checks above)",
-              file=sys.stderr)
+        _say(f"gapline: verification FAILED for run {outcome.run!r} (see the checks above)")
         return EXIT_VERIFY_FAILED
     return EXIT_OK
 

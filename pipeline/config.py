@@ -42,6 +42,9 @@ __all__ = [
 BOUNDARIES = ("periodic", "reflecting", "absorbing")
 BACKENDS = ("auto", "scipy", "slepc")
 METHODS = ("auto", "dense", "shift-invert")
+INNER_SOLVERS = ("direct", "iterative")
+PRECONDITIONERS = ("auto", "bjacobi", "asm", "gamg", "hypre")
+PETSC_OPTION = re.compile(r"[A-Za-z][A-Za-z0-9_]*")
 DISORDER_TARGETS = ("bonds", "sites")
 DISORDER_LAWS = ("uniform", "lognormal")
 MAX_DIMENSIONS = 8
@@ -87,8 +90,8 @@ SCHEMA: dict[str, dict[str, tuple[str, Any, str]]] = {
         "backend": (
             "string",
             "auto",
-            "'scipy' (one process) or 'auto'; 'slepc' is reserved for the PETSc/SLEPc backend "
-            "under MPI",
+            "'scipy' (one process), 'slepc' (PETSc/SLEPc, any number of MPI ranks) or "
+            "'auto' (scipy on one process, slepc under mpiexec/srun)",
         ),
         "method": (
             "string",
@@ -106,6 +109,26 @@ SCHEMA: dict[str, dict[str, tuple[str, Any, str]]] = {
         ),
         "vectors": ("bool", False, "store right eigenvectors [state, mode]"),
         "stationary": ("bool", True, "compute the stationary distribution (conserving W only)"),
+        "inner": (
+            "string",
+            "direct",
+            "slepc backend, inner solve of shift-and-invert: 'direct' (MUMPS LU; needed for "
+            "the completeness certificate) or 'iterative' (GMRES + solve.preconditioner, for "
+            "problems too large to factor; not certified)",
+        ),
+        "preconditioner": (
+            "string",
+            "auto",
+            "slepc backend with inner = 'iterative': 'bjacobi' (block Jacobi/ILU; 'auto'), "
+            "'asm', 'gamg' (algebraic multigrid) or 'hypre' (BoomerAMG)",
+        ),
+        "inner_tolerance": ("float", 1e-12, "relative tolerance of the iterative inner solve"),
+        "petsc": (
+            "table",
+            None,
+            "expert: PETSc options database entries (name without '-' = value), applied "
+            "after gapline's settings, e.g. eps_ncv = 128, st_mat_mumps_icntl_14 = 50",
+        ),
     },
     "verify": {
         "tolerance": (
@@ -162,6 +185,10 @@ class SolveConfig:
     max_search: int = 400
     vectors: bool = False
     stationary: bool = True
+    inner: str = "direct"
+    preconditioner: str = "auto"
+    inner_tolerance: float = 1e-12
+    petsc: dict[str, Any] = field(default_factory=dict)
 
 
 @dataclass(frozen=True)
@@ -440,7 +467,37 @@ def _parse_solve(table: dict[str, Any]) -> SolveConfig:
         max_search=max_search,
         vectors=_boolean(table.get("vectors", defaults.vectors), "solve.vectors"),
         stationary=_boolean(table.get("stationary", defaults.stationary), "solve.stationary"),
+        inner=_choice(table.get("inner", defaults.inner), INNER_SOLVERS, "solve.inner"),
+        preconditioner=_choice(table.get("preconditioner", defaults.preconditioner),
+                               PRECONDITIONERS, "solve.preconditioner"),
+        inner_tolerance=_inner_tolerance(table.get("inner_tolerance", defaults.inner_tolerance)),
+        petsc=_petsc_options(table.get("petsc", {})),
     )
+
+
+def _inner_tolerance(value: Any) -> float:
+    tolerance = _number(value, "solve.inner_tolerance")
+    if not 0 < tolerance < 1:
+        raise ConfigError(f"solve.inner_tolerance: must be in (0, 1), got {tolerance}")
+    return tolerance
+
+
+def _petsc_options(table: Any) -> dict[str, Any]:
+    """``[solve.petsc]``: option names (letters, digits, '_', no leading '-') to scalars."""
+    if not isinstance(table, dict):
+        raise ConfigError("solve.petsc: expected a table of PETSc options, e.g. "
+                          "[solve.petsc] eps_ncv = 128")
+    options = {}
+    for name, value in table.items():
+        if not PETSC_OPTION.fullmatch(name):
+            raise ConfigError(f"solve.petsc.{name}: not a PETSc option name; write it without "
+                              "the leading '-', e.g. eps_ncv = 128")
+        if isinstance(value, bool | int | float | str):
+            options[name] = value
+        else:
+            raise ConfigError(f"solve.petsc.{name}: expected a number, string or boolean, got "
+                              f"{type(value).__name__}")
+    return options
 
 
 def _parse_verify(table: dict[str, Any]) -> VerifyConfig:

@@ -1,7 +1,7 @@
 """Progress reporting: a bar in a terminal, plain log lines in batch jobs.
 
 ``GAPLINE_PROGRESS`` = ``bar`` | ``plain`` | ``off`` overrides the choice (default: ``bar``
-when stderr is a terminal, otherwise ``plain``).
+when stderr is a terminal, otherwise ``plain``). Under MPI only rank 0 prints.
 """
 
 from __future__ import annotations
@@ -14,6 +14,8 @@ __all__ = ["Progress", "log", "warn"]
 
 
 def _mode() -> str:
+    if _secondary_rank():
+        return "off"  # under MPI only rank 0 speaks
     chosen = os.environ.get("GAPLINE_PROGRESS", "").strip().lower()
     if chosen in ("bar", "plain", "off"):
         return chosen
@@ -26,8 +28,17 @@ def log(message: str) -> None:
         print(f"[{time.strftime('%H:%M:%S')}] {message}", file=sys.stderr, flush=True)
 
 
+def _secondary_rank() -> bool:
+    from pipeline.parallel import world
+
+    return not world().is_root
+
+
 def warn(message: str) -> None:
-    """A warning line on stderr; never silenced (results may be affected)."""
+    """A warning line on stderr; never silenced (results may be affected), but said once
+    under MPI (by rank 0)."""
+    if _secondary_rank():
+        return
     print(f"[{time.strftime('%H:%M:%S')}] warning: {message}", file=sys.stderr, flush=True)
 
 

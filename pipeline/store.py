@@ -49,6 +49,7 @@ from typing import Any
 import numpy as np
 
 from pipeline.errors import StoreError
+from pipeline.parallel import world
 
 __all__ = [
     "LAYOUT_VERSION",
@@ -77,10 +78,24 @@ STATE_CHUNK = 1 << 20  # states per chunk along the state axis
 
 @dataclass
 class ArraySpec:
-    """An array to write: data and its dimension names (``[state]``, ``[mode]``...)."""
+    """An array to write: data and its dimension names (``[state]``, ``[mode]``...).
+
+    A distributed array (one rank's rows under MPI) sets ``shape`` (the global shape),
+    ``offset`` (the first global row held in ``data``) and ``chunk_rows`` (rows per chunk
+    along axis 0, see :func:`pipeline.parallel.state_chunk`): every rank passes its own rows,
+    which cover whole chunks, and writes them itself. Otherwise ``data`` is the whole array
+    and rank 0 writes it.
+    """
 
     data: np.ndarray
     dims: tuple[str, ...]
+    shape: tuple[int, ...] | None = None
+    offset: int = 0
+    chunk_rows: int | None = None
+
+    @property
+    def distributed(self) -> bool:
+        return self.shape is not None
 
 
 @dataclass
@@ -100,6 +115,15 @@ class Store:
 
     def __init__(self, path: str | Path, create: bool = False) -> None:
         self.path = Path(path)
+        self.world = world()
+        # Under MPI rank 0 creates the store; the others open it once it exists (or raise
+        # the same error), so no rank waits forever on a failure of another.
+        if create and self.world.size > 1:
+            self.world.on_root(lambda: self._initialize(create=True))
+            create = False
+        self._initialize(create)
+
+    def _initialize(self, create: bool) -> None:
         if self.path.exists() and not self.path.is_dir():
             raise StoreError(f"store {str(self.path)!r}: is a file, not a store directory; "
                              "fix: choose another --store path")
@@ -151,13 +175,18 @@ class Store:
 
     def open_run(self, run: str, attrs: dict[str, Any]) -> None:
         """Create the run group if needed and merge ``attrs`` into its attributes."""
-        if not self.has_run(run):
-            self.root.create_group(run)
-        self.update_run_attrs(run, attrs)
+
+        def create() -> None:
+            if not self.has_run(run):
+                self.root.create_group(run)
+            self._zarr_group(run).attrs.update(_jsonable(attrs))
+
+        self.world.on_root(create)
 
     def update_run_attrs(self, run: str, attrs: dict[str, Any]) -> None:
-        group = self._zarr_group(run)
-        group.attrs.update(_jsonable(attrs))
+        """Merge ``attrs`` into the run's attributes (rank 0 writes; every rank returns
+        once they are written)."""
+        self.world.on_root(lambda: self._zarr_group(run).attrs.update(_jsonable(attrs)))
 
     def stage_record(self, run: str, stage: str) -> dict[str, Any] | None:
         return self.run_attrs(run).get("stages", {}).get(stage)
@@ -176,45 +205,70 @@ class Store:
         expected = set(STAGE_GROUPS[stage])
         if not set(groups) <= expected:
             raise ValueError(f"stage {stage!r} writes {sorted(expected)}, got {sorted(groups)}")
-        staging_name = f"{run}-{stage}-{os.getpid()}-{uuid.uuid4().hex[:8]}"
+        parallel = self.world
+        staging_name = parallel.bcast(
+            f"{run}-{stage}-{os.getpid()}-{uuid.uuid4().hex[:8]}" if parallel.is_root else None)
         staging_dir = self.path / STAGING / staging_name
         zarr = _zarr()
-        # _staging is itself a (never read) group, so listing the root stays clean.
-        zarr.open_group(str(self.path / STAGING), mode="a", zarr_format=3)
-        staging = zarr.open_group(str(staging_dir), mode="w", zarr_format=3)
-        for name, content in groups.items():
-            group = staging.create_group(name)
-            for array_name, spec in content.arrays.items():
-                _write_array(group, array_name, spec)
-            attrs = dict(content.attrs)
-            attrs.update(stage=stage, fingerprint=fingerprint)
-            group.attrs.update(_jsonable(attrs))
-            group.attrs["complete"] = True  # written last
-        run_dir = self.path / run
-        replaced = []
-        for name in groups:
-            final = run_dir / name
-            if final.exists():
-                trash = self.path / STAGING / f"replaced-{uuid.uuid4().hex[:8]}-{name}"
-                os.rename(final, trash)
-                replaced.append(trash)
-            os.rename(staging_dir / name, final)
-        stages = self.run_attrs(run).get("stages", {})
-        upstream_record = None
-        if upstream is not None:
-            upstream_record = {"stage": upstream,
-                               "fingerprint": stages.get(upstream, {}).get("fingerprint")}
-        stages[stage] = {
-            "fingerprint": fingerprint,
-            "upstream": upstream_record,
-            "groups": sorted(groups),
-            "finished": time.strftime("%Y-%m-%dT%H:%M:%S%z"),
-            **(record or {}),
-        }
-        self.update_run_attrs(run, {"stages": stages})
-        for trash in replaced:
-            shutil.rmtree(trash, ignore_errors=True)
-        shutil.rmtree(staging_dir, ignore_errors=True)
+
+        def create_staging() -> None:
+            # _staging is itself a (never read) group, so listing the root stays clean.
+            zarr.open_group(str(self.path / STAGING), mode="a", zarr_format=3)
+            staging = zarr.open_group(str(staging_dir), mode="w", zarr_format=3)
+            for name, content in groups.items():
+                group = staging.create_group(name)
+                for array_name, spec in content.arrays.items():
+                    array = _create_array(group, array_name, spec)
+                    if not spec.distributed:
+                        _fill_array(array, spec)
+
+        parallel.on_root(create_staging)
+        # Distributed arrays: each rank writes the whole chunks of the rows it owns.
+        def fill_own_rows() -> None:
+            for name, content in groups.items():
+                for array_name, spec in content.arrays.items():
+                    if spec.distributed:
+                        array = zarr.open_array(str(staging_dir / name / array_name), mode="r+",
+                                                zarr_format=3)
+                        _fill_array(array, spec)
+
+        parallel.collective(fill_own_rows)
+
+        def commit() -> None:
+            staging = zarr.open_group(str(staging_dir), mode="r+", zarr_format=3)
+            for name, content in groups.items():
+                group = staging[name]
+                attrs = dict(content.attrs)
+                attrs.update(stage=stage, fingerprint=fingerprint)
+                group.attrs.update(_jsonable(attrs))
+                group.attrs["complete"] = True  # written last
+            run_dir = self.path / run
+            replaced = []
+            for name in groups:
+                final = run_dir / name
+                if final.exists():
+                    trash = self.path / STAGING / f"replaced-{uuid.uuid4().hex[:8]}-{name}"
+                    os.rename(final, trash)
+                    replaced.append(trash)
+                os.rename(staging_dir / name, final)
+            stages = self.run_attrs(run).get("stages", {})
+            upstream_record = None
+            if upstream is not None:
+                upstream_record = {"stage": upstream,
+                                   "fingerprint": stages.get(upstream, {}).get("fingerprint")}
+            stages[stage] = {
+                "fingerprint": fingerprint,
+                "upstream": upstream_record,
+                "groups": sorted(groups),
+                "finished": time.strftime("%Y-%m-%dT%H:%M:%S%z"),
+                **(record or {}),
+            }
+            self._zarr_group(run).attrs.update(_jsonable({"stages": stages}))
+            for trash in replaced:
+                shutil.rmtree(trash, ignore_errors=True)
+            shutil.rmtree(staging_dir, ignore_errors=True)
+
+        parallel.on_root(commit)
 
     # -- reading ------------------------------------------------------------------------
 
@@ -269,24 +323,37 @@ def _is_stale(stages: dict[str, Any], record: dict[str, Any]) -> bool:
     return False
 
 
-def _write_array(group: Any, name: str, spec: ArraySpec) -> None:
+def _create_array(group: Any, name: str, spec: ArraySpec) -> Any:
+    """Create the array of ``spec`` (metadata only), chunked along the state axis."""
     data = np.asarray(spec.data)
+    shape = tuple(spec.shape) if spec.distributed else data.shape
+    state_rows = spec.chunk_rows if spec.chunk_rows else STATE_CHUNK
     chunks = tuple(
-        min(max(size, 1), STATE_CHUNK if dim == "state" else max(size, 1))
-        for size, dim in zip(data.shape, spec.dims, strict=True)
+        min(max(size, 1), state_rows if dim == "state" else max(size, 1))
+        for size, dim in zip(shape, spec.dims, strict=True)
     )
-    if data.ndim == 2 and spec.dims[0] == "state":
-        # Keep chunks of vectors near 16 MiB whatever the mode count.
-        rows = max(1, min(data.shape[0], (16 * 2**20) // max(1, data.shape[1] * data.itemsize)))
-        chunks = (rows, data.shape[1])
-    array = group.create_array(name, shape=data.shape, dtype=data.dtype, chunks=chunks,
-                               dimension_names=list(spec.dims))
+    if len(shape) == 2 and spec.dims[0] == "state":
+        # Keep chunks of vectors near 16 MiB whatever the mode count; halving keeps them
+        # aligned with the (power-of-two) chunks that ranks own.
+        rows = max(1, min(shape[0], state_rows))
+        while rows > 1 and rows * max(1, shape[1]) * data.itemsize > 16 * 2**20:
+            rows = (rows + 1) // 2
+        chunks = (rows, max(1, shape[1]))
+    return group.create_array(name, shape=shape, dtype=data.dtype, chunks=chunks,
+                              dimension_names=list(spec.dims))
+
+
+def _fill_array(array: Any, spec: ArraySpec) -> None:
+    """Write ``spec.data`` at its rows, one whole chunk at a time."""
+    data = np.asarray(spec.data)
     if data.ndim == 0 or data.size == 0:
-        array[...] = data
+        if not spec.distributed:
+            array[...] = data
         return
-    step = chunks[0]
-    for start in range(0, data.shape[0], step):  # whole chunks, one at a time
-        array[start : start + step] = data[start : start + step]
+    step = array.chunks[0]
+    for start in range(0, data.shape[0], step):
+        stop = min(start + step, data.shape[0])
+        array[spec.offset + start : spec.offset + stop] = data[start:stop]
 
 
 def _jsonable(value: Any) -> Any:

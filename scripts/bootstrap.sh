@@ -105,7 +105,7 @@ fi
 stamp="$VENV/.gapline-installed"
 if [[ ! -f "$stamp" || pyproject.toml -nt "$stamp" ]]; then
     say "installing gapline and its dependencies"
-    "${PIP[@]}" install -e ".[test]"
+    "${PIP[@]}" install -e ".[test,mpi]"
     touch "$stamp"
 fi
 "$PY" -c "import petsc4py, slepc4py, pipeline" || { say "import check failed"; exit 1; }

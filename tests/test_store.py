@@ -135,18 +135,18 @@ def test_interrupted_array_write_keeps_the_old_spectrum(tmp_path, store_path, qu
     _run(tmp_path, store_path, modes=5)
     old = _eigenvalues(store_path)
     calls = {"n": 0}
-    original = pipeline.store._write_array
+    original = pipeline.store._fill_array
 
-    def failing(group, name, spec):
+    def failing(array, spec):
         calls["n"] += 1
         if calls["n"] == 2:
             raise RuntimeError("disk full (simulated)")
-        return original(group, name, spec)
+        return original(array, spec)
 
-    monkeypatch.setattr(pipeline.store, "_write_array", failing)
+    monkeypatch.setattr(pipeline.store, "_fill_array", failing)
     with pytest.raises(RuntimeError, match="simulated"):
         _run(tmp_path, store_path, modes=9, start="solve")
-    monkeypatch.setattr(pipeline.store, "_write_array", original)
+    monkeypatch.setattr(pipeline.store, "_fill_array", original)
     leftovers = list((store_path / pipeline.store.STAGING).iterdir())
     assert any(path.name.startswith(RUN) for path in leftovers), "expected a staging leftover"
     store = Store(store_path)

@@ -18,10 +18,12 @@ __all__ = ["AUTO_ORDER", "BACKENDS", "Backend", "Modes", "Operator", "Stationary
 #: name -> (module, class)
 BACKENDS: dict[str, tuple[str, str]] = {
     "scipy": ("pipeline.backends.scipy_", "ScipyBackend"),
+    "slepc": ("pipeline.backends.slepc_", "SlepcBackend"),
 }
-#: names that the distributed backend will take; not built in this version
-PLANNED = {"slepc": "the PETSc/SLEPc backend is not part of this version yet"}
-AUTO_ORDER = ("scipy",)
+#: names reserved for backends not built in this version
+PLANNED: dict[str, str] = {}
+#: 'auto': scipy on one process; under mpiexec/srun scipy refuses and slepc is taken
+AUTO_ORDER = ("scipy", "slepc")
 
 
 def select_backend(name: str) -> Backend:

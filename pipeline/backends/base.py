@@ -68,6 +68,8 @@ class Modes:
     certified : the set is proven to hold every eigenvalue with real part >= the last one.
     certificate : how that was decided (kind, radii, note).
     group_complete : False when the requested count cuts a group of equal real parts.
+    vector_rows : ``(start, stop)`` when ``vectors`` holds only these rows of the state axis
+        (one MPI rank's share); None when it holds every row.
     """
 
     values: np.ndarray
@@ -81,6 +83,7 @@ class Modes:
     condition: np.ndarray | None = None
     error_estimates: np.ndarray | None = None
     info: dict[str, Any] = field(default_factory=dict)
+    vector_rows: tuple[int, int] | None = None
 
 
 @dataclass
@@ -89,6 +92,8 @@ class Stationary:
 
     residual : ``||W p||_1 / ||W||_1``; negative_mass : total weight clipped from negative
     entries before renormalizing (rounding noise; large values mean a bad solve).
+    rows : ``(start, stop)`` when ``distribution`` holds only these states (one MPI rank's
+    share); None when it holds all of them.
     """
 
     distribution: np.ndarray
@@ -97,6 +102,7 @@ class Stationary:
     method: str
     seconds: float
     info: dict[str, Any] = field(default_factory=dict)
+    rows: tuple[int, int] | None = None
 
 
 class Backend(ABC):
@@ -109,6 +115,9 @@ class Backend(ABC):
     def unavailable_reason(cls) -> str | None:
         """None when usable here, else one line saying why not and what to do."""
         return None
+
+    def configure(self, settings: Any) -> None:  # noqa: B027 (optional hook)
+        """Take backend-specific settings from a ``SolveConfig`` (inner solver, options)."""
 
     @abstractmethod
     def assemble(self, model: Model) -> Operator:
@@ -134,11 +143,14 @@ class Backend(ABC):
 
 
 def check_column_sums(
-    column_sums: np.ndarray, diagonal: np.ndarray, conserving: bool, norm1: float
+    column_sums: np.ndarray, diagonal: np.ndarray, conserving: bool, norm1: float,
+    offset: int = 0,
 ) -> GeneratorCheck:
     """Check that columns of ``W`` sum to zero (or to <= 0 for a sub-generator).
 
-    Raises :class:`ModelError` when they do not, within ``BLOCK_TOLERANCE * ||W||_1``.
+    ``column_sums``/``diagonal`` may be a slice of the columns starting at state ``offset``
+    (one rank's share); messages name global states. Raises :class:`ModelError` when they
+    do not, within ``BLOCK_TOLERANCE * ||W||_1``.
     """
     tolerance = BLOCK_TOLERANCE * max(norm1, np.finfo(float).tiny)
     max_exit = float(-diagonal.min(initial=0.0))
@@ -147,7 +159,7 @@ def check_column_sums(
         if defect > tolerance:
             state = int(np.argmax(np.abs(column_sums)))
             raise ModelError(
-                f"column {state} of W sums to {column_sums[state]:.3g}, not 0: the model "
+                f"column {offset + state} of W sums to {column_sums[state]:.3g}, not 0: the model "
                 "claims to conserve probability but does not"
             )
         leak = 0.0
@@ -156,7 +168,7 @@ def check_column_sums(
         if defect > tolerance:
             state = int(np.argmax(column_sums))
             raise ModelError(
-                f"column {state} of W sums to {column_sums[state]:.3g} > 0: probability "
+                f"column {offset + state} of W sums to {column_sums[state]:.3g} > 0: probability "
                 "would be created"
             )
         leak = float(-column_sums.min(initial=0.0))

@@ -17,7 +17,7 @@ from scipy.sparse import coo_matrix
 from scipy.sparse.csgraph import connected_components
 from scipy.spatial import cKDTree
 
-__all__ = ["cluster_labels", "eigenvalue_conditions"]
+__all__ = ["cluster_labels", "conditions_from_products", "eigenvalue_conditions"]
 
 
 def cluster_labels(values: np.ndarray, tolerance: float) -> np.ndarray:
@@ -92,3 +92,52 @@ def _independent_basis(vectors: np.ndarray) -> np.ndarray | None:
     if singular.min() < 1e-8 * singular.max():
         return None
     return basis
+
+
+def conditions_from_products(
+    right_values: np.ndarray,
+    left_values: np.ndarray,
+    right_gram: np.ndarray,
+    left_gram: np.ndarray,
+    cross: np.ndarray,
+    tolerance: float,
+    chosen: np.ndarray,
+) -> np.ndarray:
+    """:func:`eigenvalue_conditions` from inner products only, for vectors spread over MPI
+    ranks: ``right_gram = R^H R``, ``left_gram = L^H L``, ``cross = L^H R`` (all computed
+    modes). With ``Q_r = R_c G_r^{-1/2}`` (and likewise for ``L``) the cluster condition is
+    ``1 / sigma_min(G_l^{-1/2} L_c^H R_c G_r^{-1/2})``; a Gram matrix whose relative smallest
+    eigenvalue is below 1e-16 (singular values below 1e-8) marks dependent vectors: ``inf``.
+    """
+    right_values = np.asarray(right_values, dtype=complex)
+    left_values = np.asarray(left_values, dtype=complex)
+    chosen = np.asarray(chosen)
+    conditions = np.full(chosen.size, np.inf)
+    labels = cluster_labels(right_values, tolerance)
+    for label in np.unique(labels[chosen]):  # a loop over clusters of modes, not states
+        members = np.flatnonzero(labels == label)
+        distance = np.abs(left_values[:, None] - right_values[None, members]).min(axis=1)
+        partners = np.flatnonzero(distance <= tolerance)
+        if partners.size != members.size:
+            continue
+        right_root = _inverse_root(right_gram[np.ix_(members, members)])
+        left_root = _inverse_root(left_gram[np.ix_(partners, partners)])
+        if right_root is None or left_root is None:
+            continue
+        core = left_root.conj().T @ cross[np.ix_(partners, members)] @ right_root
+        smallest = np.linalg.svd(core, compute_uv=False).min()
+        if smallest > 0:
+            conditions[np.isin(chosen, members)] = 1.0 / smallest
+    return conditions
+
+
+def _inverse_root(products: np.ndarray) -> np.ndarray | None:
+    """``G^{-1/2}`` of a Hermitian Gram matrix, or None when its vectors are dependent."""
+    products = 0.5 * (products + products.conj().T)
+    scale = np.sqrt(np.abs(np.diag(products)).clip(1e-300))
+    normalized = products / np.outer(scale, scale)
+    values, vectors = np.linalg.eigh(normalized)
+    if values.min(initial=1.0) < 1e-16 * max(values.max(initial=1.0), 1e-300):
+        return None
+    root = (vectors / np.sqrt(values)) @ vectors.conj().T  # N^{-1/2}
+    return root / scale[:, None]  # S^{-1} N^{-1/2}: C S^{-1} N^{-1/2} is orthonormal

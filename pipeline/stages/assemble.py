@@ -9,6 +9,7 @@ from pipeline.store import GroupData
 NAME = "assemble"
 CONFIG_SECTIONS = ("model",)
 UPSTREAM: str | None = None
+COLLECTIVE = True  # every MPI rank takes part (its own rows)
 
 
 def run(ctx: RunContext) -> StageOutput:

@@ -14,6 +14,7 @@ from pipeline.verification.checks import spectral_gap
 NAME = "report"
 CONFIG_SECTIONS: tuple[str, ...] = ()
 UPSTREAM = "verify"
+COLLECTIVE = False  # reads the store: rank 0 runs it, the others share the outcome
 SHOWN_MODES = 12
 
 

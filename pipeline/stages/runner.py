@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import platform
+import resource
 import time
 from dataclasses import dataclass
 from importlib.metadata import PackageNotFoundError, version
@@ -12,6 +13,7 @@ import pipeline
 from pipeline.config import Config, fingerprint
 from pipeline.errors import ConfigError, StoreError
 from pipeline.models import build_model
+from pipeline.parallel import World, world
 from pipeline.progress import log
 from pipeline.stages import STAGE_NAMES, STAGES
 from pipeline.stages.base import RunContext
@@ -31,7 +33,7 @@ class RunOutcome:
 def software_versions() -> dict[str, str]:
     """Versions of the packages a result depends on (without importing them)."""
     versions = {"gapline": pipeline.__version__, "python": platform.python_version()}
-    for name in ("numpy", "scipy", "zarr", "xarray", "dask", "petsc4py", "slepc4py"):
+    for name in ("numpy", "scipy", "zarr", "xarray", "dask", "petsc4py", "slepc4py", "mpi4py"):
         try:
             versions[name] = version(name)
         except PackageNotFoundError:
@@ -74,7 +76,9 @@ def run_pipeline(
     from pipeline.backends import select_backend
 
     backend = select_backend(config.solve.backend)  # refuse early (e.g. under mpiexec)
+    backend.configure(config.solve)
     model = build_model(config.model)
+    parallel = world()
     path = store_path or config.store.path
     store = Store(path, create=True)
     prints = stage_fingerprints(config)
@@ -101,10 +105,15 @@ def run_pipeline(
             continue
         log(f"stage {stage.NAME}: started")
         started = time.perf_counter()
-        output = stage.run(ctx)
+        if getattr(stage, "COLLECTIVE", False):
+            output = stage.run(ctx)
+        else:  # reads the store: once, on rank 0; every rank gets the outcome
+            output = parallel.on_root(lambda stage=stage: stage.run(ctx))
         resolved = config.resolved()
         record = {**output.record,
-                  "config": {name: resolved.get(name) for name in stage.CONFIG_SECTIONS}}
+                  "config": {name: resolved.get(name) for name in stage.CONFIG_SECTIONS},
+                  "ranks": parallel.size,
+                  "peak_memory_mib_per_rank": _peak_memory(parallel)}
         store.write_stage(run, stage.NAME, output.groups, prints[stage.NAME], record,
                           upstream=stage.UPSTREAM)
         seconds = time.perf_counter() - started
@@ -115,6 +124,12 @@ def run_pipeline(
         if stage.NAME == "verify":
             verified = output.passed
     return RunOutcome(run=run, store=str(store.path), stages_run=selected, verified=verified)
+
+
+def _peak_memory(parallel: World) -> list[float]:
+    """Peak resident memory of each rank so far (MiB)."""
+    peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0  # kB on Linux
+    return [round(value, 1) for value in parallel.allgather(peak)]
 
 
 def _require_upstream(store: Store, run: str, upstream: str, prints: dict[str, str]) -> None:

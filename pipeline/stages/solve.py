@@ -6,6 +6,7 @@ import time
 
 import numpy as np
 
+from pipeline.parallel import state_chunk, world
 from pipeline.progress import log, warn
 from pipeline.stages.base import RunContext, StageOutput
 from pipeline.store import ArraySpec, GroupData
@@ -13,6 +14,7 @@ from pipeline.store import ArraySpec, GroupData
 NAME = "solve"
 CONFIG_SECTIONS = ("solve",)
 UPSTREAM = "assemble"
+COLLECTIVE = True  # every MPI rank takes part (its own rows)
 
 
 def run(ctx: RunContext) -> StageOutput:
@@ -66,12 +68,14 @@ def run(ctx: RunContext) -> StageOutput:
                 "(ill-conditioned, non-normal generator): small residuals do not make these "
                 "eigenvalues accurate")
     if modes.vectors is not None:
-        spectrum.arrays["vectors"] = ArraySpec(modes.vectors, ("state", "mode"))
+        spectrum.arrays["vectors"] = _state_array(modes.vectors, ("state", "mode"),
+                                                  modes.vector_rows, operator.n_states)
     groups = {"spectrum": spectrum}
     if settings.stationary and operator.check.conserving:
         result = backend.stationary(operator, dense_limit=settings.dense_limit)
         groups["stationary"] = GroupData(
-            arrays={"distribution": ArraySpec(result.distribution, ("state",))},
+            arrays={"distribution": _state_array(result.distribution, ("state",),
+                                                 result.rows, operator.n_states)},
             attrs={
                 "backend": backend.name,
                 "method": result.method,
@@ -87,3 +91,13 @@ def run(ctx: RunContext) -> StageOutput:
         log("solve: W is a sub-generator (absorbing boundary): no stationary distribution")
     seconds = time.perf_counter() - started
     return StageOutput(groups, record={"seconds": seconds, "certified": modes.certified})
+
+
+def _state_array(data: np.ndarray, dims: tuple[str, ...], rows: tuple[int, int] | None,
+                 n_states: int) -> ArraySpec:
+    """A state-axis array: whole, or (under MPI) this rank's rows of it."""
+    if rows is None:
+        return ArraySpec(data, dims)
+    ranks = world().size
+    return ArraySpec(data, dims, shape=(n_states, *data.shape[1:]), offset=rows[0],
+                     chunk_rows=state_chunk(n_states, ranks))

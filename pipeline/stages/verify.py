@@ -15,6 +15,7 @@ from pipeline.verification.checks import Check, compare_multisets, spectral_gap
 NAME = "verify"
 CONFIG_SECTIONS = ("verify",)
 UPSTREAM = "solve"
+COLLECTIVE = False  # reads the store: rank 0 runs it, the others share the outcome
 
 RESIDUAL_SOURCE = "common practice: backward error of an eigenpair, ||Wv - lv|| / ||W||"
 GENERATOR_SOURCE = "definition of a generator: columns sum to 0 (<= 0 with absorption)"

@@ -1,0 +1,568 @@
+"""Distributed backend: PETSc matrices, SLEPc Krylov–Schur with shift-and-invert (MUMPS or
+an iterative inner solve), an inertia certificate of completeness, and the stationary
+distribution, the same under ``mpiexec -n P`` as on one process.
+
+Ownership: rank r assembles and keeps rows ``pipeline.parallel.ownership_ranges(n, P)[r]``
+(whole store chunks). Vectors in the returned ``Modes``/``Stationary`` are those local rows
+(``vector_rows``/``rows`` say which); eigenvalues and certificates are the same on every rank.
+"""
+
+from __future__ import annotations
+
+import math
+import resource
+import time
+from typing import Any
+
+import numpy as np
+import scipy.sparse as sp
+
+from pipeline.backends.base import (
+    Backend,
+    GeneratorCheck,
+    Modes,
+    Operator,
+    Stationary,
+    check_column_sums,
+)
+from pipeline.backends.conditioning import conditions_from_products
+from pipeline.backends.petsc_tools import (
+    apply,
+    apply_transpose,
+    gram,
+    normalize_columns,
+    petsc,
+    start_vector,
+)
+from pipeline.errors import BackendError, ModelError, SolverError
+from pipeline.models.base import Model, validate_block
+from pipeline.modes import grouping_tolerance, take_slowest
+from pipeline.parallel import ownership_ranges, state_chunk, world
+from pipeline.progress import log, warn
+
+__all__ = ["SlepcBackend"]
+
+SHIFT_FACTOR = 1e-9  # target of shift-and-invert: this times the largest exit rate (> 0)
+CLUSTER_FACTOR = 1e-8  # eigenvalues closer than this times ||W||_1 are one cluster
+STATIONARY_MAX_STEPS = 200
+STATIONARY_TARGET = 1e-13
+MAX_ROUNDS = 4
+INNER_SOLVERS = ("direct", "iterative")
+PRECONDITIONERS = {"auto": "bjacobi", "bjacobi": "bjacobi", "gamg": "gamg", "hypre": "hypre",
+                   "asm": "asm"}
+
+
+def _unavailable() -> str | None:
+    try:
+        import mpi4py  # noqa: F401
+        from petsc4py import PETSc
+        from slepc4py import SLEPc  # noqa: F401
+    except ImportError as exc:
+        return (f"solve.backend: 'slepc' needs petsc4py, slepc4py and mpi4py ({exc}); run "
+                "'make venv' (it builds them against the system PETSc/SLEPc)")
+    if not PETSc.Sys.hasExternalPackage("mumps"):
+        return ("solve.backend: 'slepc' needs a PETSc built with MUMPS (Debian's "
+                "libpetsc-real-dev has it); or set solve.inner = 'iterative'")
+    return None
+
+
+class SlepcBackend(Backend):
+    name = "slepc"
+    description = ("PETSc/SLEPc under MPI: distributed AIJ, Krylov–Schur + shift-and-invert "
+                   "(MUMPS or GMRES), inertia certificate")
+    block_rows = 1 << 16
+
+    def __init__(self) -> None:
+        self.world = world()
+        self.inner = "direct"
+        self.preconditioner = "auto"
+        self.inner_tolerance = 1e-12
+        self.options: dict[str, Any] = {}
+
+    @classmethod
+    def unavailable_reason(cls) -> str | None:
+        return _unavailable()
+
+    def configure(self, settings: Any) -> None:
+        """Take the inner solver and PETSc options of a ``SolveConfig``."""
+        self.inner = getattr(settings, "inner", "direct")
+        self.preconditioner = getattr(settings, "preconditioner", "auto")
+        self.inner_tolerance = getattr(settings, "inner_tolerance", 1e-12)
+        self.options = dict(getattr(settings, "petsc", {}) or {})
+
+    # -- assembly ------------------------------------------------------------------------
+
+    def assemble(self, model: Model) -> Operator:
+        """Each rank asks the model for its own rows and inserts them with exact
+        preallocation (CSR); the column sums are checked as ``W^T 1`` (no gather)."""
+        reason = self.unavailable_reason()
+        if reason:
+            raise BackendError(reason)
+        PETSc = petsc()
+        started = time.perf_counter()
+        n = model.n_states
+        ranks = self.world.size
+        ranges = ownership_ranges(n, ranks)
+        start, stop = ranges[self.world.rank]
+        index_bytes = PETSc.IntType(0).itemsize
+        if index_bytes == 4 and model.nnz_upper_bound(0, n) >= 2**31 - 1:
+            raise BackendError(f"solve.backend: {n} states need 64-bit indices but this PETSc "
+                               "uses 32-bit ones; use a PETSc built with --with-64-bit-indices")
+
+        def local_rows() -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+            bound = model.nnz_upper_bound(start, stop) if stop > start else 0
+            indices = np.empty(bound, dtype=PETSc.IntType)
+            data = np.empty(bound, dtype=np.float64)
+            indptr = np.zeros(stop - start + 1, dtype=PETSc.IntType)
+            filled = 0
+            for first in range(start, stop, self.block_rows):
+                last = min(first + self.block_rows, stop)
+                block = model.row_block(first, last)
+                validate_block(block, n)
+                count = block.nnz
+                indices[filled : filled + count] = block.indices
+                data[filled : filled + count] = block.data
+                indptr[first - start + 1 : last - start + 1] = block.indptr[1:] + filled
+                filled += count
+            local = sp.csr_matrix((data[:filled], indices[:filled], indptr),
+                                  shape=(stop - start, n))
+            local.sort_indices()  # in place; PETSc's CSR preallocation wants sorted rows
+            return local.indptr, local.indices, local.data
+
+        indptr, indices, data = self.world.collective(local_rows)
+        m = stop - start
+        W = PETSc.Mat().createAIJ(size=((m, n), (m, n)),
+                                  csr=(indptr.astype(PETSc.IntType, copy=False),
+                                       indices.astype(PETSc.IntType, copy=False), data),
+                                  comm=PETSc.COMM_WORLD)
+        W.assemble()
+        del indptr, indices, data
+        ones, column_sums = W.createVecs()
+        ones.set(1.0)
+        W.multTranspose(ones, column_sums)
+        diagonal = W.getDiagonal().getArray(readonly=True).copy()
+        sums = column_sums.getArray(readonly=True).copy()
+
+        def check_local() -> GeneratorCheck:
+            if diagonal.size and diagonal.max() > 0:
+                state = int(np.argmax(diagonal))
+                raise ModelError(f"W[{start + state}, {start + state}] = {diagonal[state]}: the "
+                                 "diagonal is minus an exit rate and must be <= 0")
+            column_abs = sums - 2.0 * diagonal
+            norm1 = self.world.max(float(column_abs.max(initial=0.0)))
+            return check_column_sums(sums, diagonal, model.conserving, norm1, offset=start)
+
+        local_check = self.world.collective(check_local)
+        check = GeneratorCheck(
+            conserving=model.conserving,
+            norm1=local_check.norm1,
+            max_exit_rate=self.world.max(local_check.max_exit_rate),
+            column_sum_defect=self.world.max(local_check.column_sum_defect),
+            tolerance=local_check.tolerance,
+            leak_rate_max=self.world.max(local_check.leak_rate_max),
+        )
+        info = {
+            "ranks": ranks,
+            "ownership_ranges": [list(r) for r in ranges],
+            "state_chunk": state_chunk(n, ranks),
+            "index_bytes": int(index_bytes),
+            "matrix_type": W.getType(),
+        }
+        nnz = int(W.getInfo(PETSc.Mat.InfoType.GLOBAL_SUM)["nz_used"])
+        seconds = time.perf_counter() - started
+        return Operator(model, n, nnz, check, seconds,
+                        handle={"W": W, "rows": (start, stop)}, info=info)
+
+    # -- slowest modes -------------------------------------------------------------------
+
+    def slowest_modes(
+        self,
+        operator: Operator,
+        count: int,
+        *,
+        method: str = "auto",
+        tolerance: float = 1e-12,
+        vectors: bool = False,
+        dense_limit: int = 1024,
+        max_search: int = 400,
+    ) -> Modes:
+        n = operator.n_states
+        count = min(count, n)
+        if method == "auto":
+            method = "dense" if n <= dense_limit else "shift-invert"
+        if method == "shift-invert" and count >= n - 2:
+            log(f"solve: {count} modes of {n} states leave no room past the last one; "
+                "using dense")
+            method = "dense"
+        if method == "dense":
+            return self._dense_modes(operator, count, vectors)
+        return self._krylov_modes(operator, count, tolerance, vectors, max_search)
+
+    def _gather_scipy(self, operator: Operator) -> sp.csr_matrix:
+        """The whole (small) matrix on every rank: only for the dense method."""
+        W = operator.handle["W"]
+        indptr, indices, data = W.getValuesCSR()
+        pieces = self.world.allgather((indptr, indices, data))
+        rows = [sp.csr_matrix((d, j, i), shape=(i.size - 1, operator.n_states))
+                for i, j, d in pieces]
+        return sp.vstack(rows, format="csr")
+
+    def _dense_modes(self, operator: Operator, count: int, want_vectors: bool) -> Modes:
+        from pipeline.backends.scipy_ import ScipyBackend
+
+        W = self._gather_scipy(operator)
+        local = Operator(operator.model, operator.n_states, operator.nnz, operator.check,
+                         0.0, handle={"W": W})
+        modes = ScipyBackend()._dense_modes(local, count, want_vectors)
+        start, stop = operator.handle["rows"]
+        if modes.vectors is not None:
+            modes.vectors = modes.vectors[start:stop].copy()
+            modes.vector_rows = (start, stop)
+        modes.method = "dense (LAPACK geev on the gathered matrix, the same on every rank)"
+        modes.info.update(self._provenance(operator))
+        return modes
+
+    def _spectral_transform(self, eps: Any, shift: float) -> dict[str, Any]:
+        """Shift-and-invert about ``shift`` with the configured inner solver."""
+        st = eps.getST()
+        st.setType("sinvert")
+        ksp = st.getKSP()
+        pc = ksp.getPC()
+        if self.inner == "direct":
+            ksp.setType("preonly")
+            pc.setType("lu")
+            pc.setFactorSolverType("mumps")
+            inner = {"inner_solver": "direct", "factorization": "LU (MUMPS)"}
+        else:
+            ksp.setType("gmres")
+            ksp.setTolerances(rtol=self.inner_tolerance, atol=0.0, max_it=10000)
+            pc_type = PRECONDITIONERS[self.preconditioner]
+            pc.setType(pc_type)
+            inner = {"inner_solver": "iterative", "ksp": "gmres", "pc": pc_type,
+                     "inner_tolerance": self.inner_tolerance}
+        return inner
+
+    def _apply_user_options(self) -> None:
+        if not self.options:
+            return
+        options = petsc().Options()
+        for key, value in self.options.items():
+            if isinstance(value, bool):
+                value = "true" if value else "false"
+            options.setValue(str(key), str(value))
+
+    def _eigensolve(self, W: Any, shift: float, nev: int, ncv: int, tolerance: float,
+                    initial: np.ndarray | None, rows: tuple[int, int]) -> dict[str, Any]:
+        from slepc4py import SLEPc
+
+        PETSc = petsc()
+        eps = SLEPc.EPS().create(comm=W.getComm())
+        eps.setOperators(W)
+        eps.setProblemType(SLEPc.EPS.ProblemType.NHEP)
+        eps.setType(SLEPc.EPS.Type.KRYLOVSCHUR)
+        eps.setTarget(shift)
+        # Rank by real part (back-transformed), not by distance to the shift: complex slow
+        # modes with large imaginary parts are exactly those a nearest-first search skips.
+        eps.setWhichEigenpairs(SLEPc.EPS.Which.TARGET_REAL)
+        eps.setDimensions(nev=nev, ncv=ncv, mpd=ncv)
+        eps.setTolerances(tol=tolerance, max_it=100000)
+        inner = self._spectral_transform(eps, shift)
+        space = []
+        start, stop = rows
+        base = W.createVecRight()
+        vectors = initial if initial is not None else start_vector(start, stop)[:, None]
+        for column in np.atleast_2d(vectors.T):  # a loop over seed vectors
+            vec = base.duplicate()
+            vec.getArray()[:] = column
+            space.append(vec)
+        eps.setInitialSpace(space)
+        self._apply_user_options()
+        eps.setFromOptions()
+        started = time.perf_counter()
+        eps.solve()
+        seconds = time.perf_counter() - started
+        converged = eps.getConverged()
+        values = np.array([eps.getEigenvalue(i) for i in range(converged)], dtype=complex)
+        local = np.empty((stop - start, converged), dtype=complex)
+        vr, vi = W.createVecs()
+        for i in range(converged):  # a loop over modes
+            eps.getEigenvector(i, vr, vi)
+            local[:, i] = vr.getArray(readonly=True) + 1j * vi.getArray(readonly=True)
+        st = eps.getST()
+        ksp = st.getKSP()
+        outcome = {
+            "values": values, "vectors": local, "seconds": seconds,
+            "iterations": int(eps.getIterationNumber()),
+            "nev": int(eps.getDimensions()[0]), "ncv": int(eps.getDimensions()[1]),
+            "reason": int(eps.getConvergedReason()), "inner": inner,
+            "ksp_type": ksp.getType(), "pc_type": ksp.getPC().getType(),
+            "eps": eps,
+        }
+        del PETSc
+        return outcome
+
+    def _krylov_modes(self, operator: Operator, count: int, tolerance: float,
+                      want_vectors: bool, max_search: int) -> Modes:
+        started = time.perf_counter()
+        W = operator.handle["W"]
+        rows = operator.handle["rows"]
+        n = operator.n_states
+        scale = operator.check.norm1
+        shift = SHIFT_FACTOR * max(operator.check.max_exit_rate, np.finfo(float).tiny)
+        # Ask for a few more than wanted: the certificate needs the next real part below
+        # the last wanted group, to put its test shift in the gap.
+        nev = min(n - 2, count + max(4, count // 2))
+        ncv_cap = min(n - 1, max(max_search, nev + 2))
+        rounds: list[dict[str, Any]] = []
+        initial = None
+        certificate: dict[str, Any] = {}
+        certified = False
+        eps_seconds = 0.0
+        while True:
+            ncv = min(ncv_cap, max(4 * nev, 64))
+            log(f"solve: Krylov–Schur, shift-and-invert about {shift:.2e}, {nev} modes by "
+                f"real part (subspace {ncv})")
+            result = self._eigensolve(W, shift, nev, ncv, tolerance, initial, rows)
+            eps_seconds += result["seconds"]
+            values, local = result["values"], result["vectors"]
+            if values.size == 0:
+                raise SolverError("solve: Krylov–Schur converged no eigenvalue; raise "
+                                  "solve.tolerance or use solve.inner = 'direct'")
+            local = normalize_columns(self.world, local, rows[0])
+            residuals = self._residuals(W, values, local, scale)
+            tol = grouping_tolerance(values, scale)
+            chosen, group_complete = take_slowest(values, count, tol)
+            threshold = float(values[chosen].real.min())
+            below = values.real[values.real < threshold - tol]
+            round_record = {"nev": result["nev"], "ncv": result["ncv"],
+                            "converged": int(values.size), "iterations": result["iterations"],
+                            "seconds": result["seconds"]}
+            if below.size == 0:
+                round_record["note"] = "no converged mode below the last wanted group"
+                rounds.append(round_record)
+                if nev >= min(max_search, n - 2) or len(rounds) >= MAX_ROUNDS:
+                    certificate = {"kind": "inertia", "note": "NOT CERTIFIED: the search never "
+                                   "reached below the last wanted group; raise solve.max_search"}
+                    break
+                nev = min(n - 2, max_search, 2 * nev)
+                initial = local.real
+                continue
+            test_shift = 0.5 * (threshold + float(below.max()))
+            if self.inner != "direct":
+                certificate = {"kind": "none", "note": "NOT CERTIFIED: the inertia certificate "
+                               "needs a factorization; use solve.inner = 'direct' to certify"}
+                rounds.append(round_record)
+                break
+            above = values.real > test_shift
+            scaling = self._balancing(operator, values, local)
+            cert = self._certify(W, scaling, values[above], local[:, above], test_shift)
+            round_record.update(missing=cert.missing, certified=cert.certified,
+                                certificate_seconds=cert.seconds)
+            rounds.append(round_record)
+            certificate = cert.as_dict()
+            certified = cert.certified
+            log(f"solve: certificate at t = {test_shift:.3e}: {cert.above_shift} above t, "
+                f"{cert.captured} in the found span -> "
+                + ("certified" if certified else f"{cert.missing} missing"))
+            if certified or len(rounds) >= MAX_ROUNDS or nev >= min(max_search, n - 2):
+                break
+            nev = min(n - 2, max_search, nev + max(cert.missing, 1) + 4)
+            initial = local.real
+        eps = result.pop("eps")
+        operator.handle["eps"] = eps  # its factorization serves the stationary solve
+        operator.handle["eps_shift"] = shift
+        # Left vectors (condition numbers): the balanced guess is exact for a normal
+        # D^-1 W D; when its residual says otherwise, solve for them on W^T.
+        left_values, left, left_method = self._left_vectors(operator, values, local, scale,
+                                                            tolerance, shift)
+        products = (gram(self.world, local, local), gram(self.world, left, left),
+                    gram(self.world, left, local))
+        condition = conditions_from_products(values, left_values, *products,
+                                             CLUSTER_FACTOR * scale, chosen)
+        values_kept, residuals_kept = values[chosen], residuals[chosen]
+        info = {
+            **self._provenance(operator),
+            "searched": int(values.size),
+            "rounds": rounds,
+            "shift": shift,
+            "eigensolver_seconds": eps_seconds,
+            "left_vectors": left_method,
+            **result["inner"],
+            "ksp_type": result["ksp_type"],
+            "pc_type": result["pc_type"],
+            "iterations": int(sum(r["iterations"] for r in rounds)),
+        }
+        if not certified:
+            warn(f"solve: {certificate.get('note')}")
+        with np.errstate(invalid="ignore", over="ignore"):
+            estimates = np.where(np.isfinite(condition),
+                                 condition * residuals_kept * scale, np.inf)
+        return Modes(
+            values=values_kept.astype(np.complex128),
+            residuals=residuals_kept,
+            vectors=local[:, chosen] if want_vectors else None,
+            method=(f"Krylov–Schur (SLEPc), shift-and-invert ({result['inner']['inner_solver']}"
+                    "), ranked by real part, inertia certificate"),
+            certified=certified,
+            certificate=certificate,
+            group_complete=group_complete,
+            seconds=time.perf_counter() - started,
+            condition=condition,
+            error_estimates=estimates,
+            info=info,
+            vector_rows=rows if want_vectors else None,
+        )
+
+    def _residuals(self, W: Any, values: np.ndarray, local: np.ndarray,
+                   scale: float) -> np.ndarray:
+        difference = apply(W, local) - local * values[None, :]
+        local_sq = np.einsum("ij,ij->j", difference.conj(), difference).real
+        return np.sqrt(self.world.sum(np.ascontiguousarray(local_sq))) / max(scale, 1e-300)
+
+    def _balancing(self, operator: Operator, values: np.ndarray,
+                   local: np.ndarray) -> np.ndarray:
+        """Local rows of ``D = diag(sqrt(p))``, ``p`` the stationary (Perron) vector: the
+        eigenvector of the slowest mode, floored so ``D`` stays positive (any positive ``D``
+        keeps the certificate rigorous; ``p`` makes it sharp)."""
+        top = int(np.argmax(values.real))
+        p = np.abs(local[:, top].real)
+        peak = self.world.max(float(p.max(initial=0.0)))
+        return np.sqrt(np.maximum(p / max(peak, 1e-300), 1e-200))
+
+    def _certify(self, W: Any, scaling: np.ndarray, values: np.ndarray, vectors: np.ndarray,
+                 shift: float):
+        from pipeline.backends.inertia_certificate import certify_by_inertia
+
+        self._apply_user_options()
+        return certify_by_inertia(self.world, W, scaling, values, vectors, shift)
+
+    def _left_vectors(self, operator: Operator, values: np.ndarray, local: np.ndarray,
+                      scale: float, tolerance: float, shift: float
+                      ) -> tuple[np.ndarray, np.ndarray, str]:
+        W = operator.handle["W"]
+        top = int(np.argmax(values.real))
+        p = np.abs(local[:, top].real)
+        peak = self.world.max(float(p.max(initial=0.0)))
+        weight = np.maximum(p / max(peak, 1e-300), 1e-200)
+        guess = local / weight[:, None]  # l = D^-2 r
+        guess = guess / np.maximum(
+            np.sqrt(self.world.sum(np.einsum("ij,ij->j", guess.conj(), guess).real)), 1e-300)
+        left_residual = apply_transpose(W, guess) - guess * values.conj()[None, :]
+        norms = np.sqrt(self.world.sum(
+            np.ascontiguousarray(np.einsum("ij,ij->j", left_residual.conj(),
+                                           left_residual).real))) / max(scale, 1e-300)
+        if float(norms.max(initial=0.0)) <= max(1e3 * tolerance, 1e-9):
+            return values.copy(), guess, "balanced guess D^-2 r (left residual checked)"
+        transposed = W.transpose(petsc().Mat())
+        try:
+            result = self._eigensolve(transposed, shift, values.size,
+                                      min(operator.n_states - 1, max(4 * values.size, 64)),
+                                      tolerance, None, operator.handle["rows"])
+        finally:
+            transposed.destroy()
+        result.pop("eps").destroy()
+        # W^T y = mu y means conj(y)^H W = mu conj(y)^H: the left vector is conj(y).
+        return (result["values"], np.conj(result["vectors"]),
+                "Krylov–Schur on W^T (the balanced guess did not fit)")
+
+    # -- stationary distribution ---------------------------------------------------------
+
+    def stationary(self, operator: Operator, dense_limit: int = 1024) -> Stationary:
+        if not operator.check.conserving:
+            raise SolverError("solve.stationary: W is a sub-generator (probability leaks "
+                              "out), so there is no stationary distribution; set it to false")
+        started = time.perf_counter()
+        W = operator.handle["W"]
+        start, stop = operator.handle["rows"]
+        ones, row_sums = W.createVecs()
+        ones.set(1.0)
+        W.mult(ones, row_sums)  # W 1 = 0 too: doubly stochastic, the uniform law is exact
+        row_defect = self.world.max(float(np.abs(row_sums.getArray(readonly=True)).max(
+            initial=0.0)))
+        steps, estimate = 0, 0.0
+        if row_defect <= 1e-14 * operator.check.norm1:
+            p = np.full(stop - start, 1.0 / operator.n_states)
+            method = "uniform (W 1 = 0 and 1^T W = 0: the uniform law is stationary)"
+        else:
+            ksp, shift, owned = self._shifted_solver(operator)
+            work = W.createVecs()
+
+            def solve(x: np.ndarray) -> np.ndarray:
+                work[0].getArray()[:] = x
+                ksp.solve(work[0], work[1])
+                return work[1].getArray(readonly=True).copy()
+
+            p, steps, estimate = inverse_iteration(
+                solve, np.full(stop - start, 1.0 / operator.n_states), self.world.sum)
+            if owned:
+                ksp.destroy()
+            method = f"inverse iteration with shift-and-invert about {shift:.2e}"
+            if not estimate <= STATIONARY_TARGET:
+                warn(f"solve.stationary: inverse iteration stopped after {steps} steps with an "
+                     f"estimated error of {estimate:.1e}")
+        negative_mass = float(self.world.sum(float(-p[p < 0].sum()))) + 0.0
+        p = np.clip(p, 0.0, None)
+        p /= self.world.sum(float(p.sum()))
+        image = apply(W, p)
+        residual = self.world.sum(float(np.abs(image).sum())) / max(operator.check.norm1,
+                                                                    1e-300)
+        info = {"iterations": steps, "error_estimate": estimate,
+                **self._provenance(operator)}
+        return Stationary(p, float(residual), negative_mass, method,
+                          time.perf_counter() - started, info=info, rows=(start, stop))
+
+    def _shifted_solver(self, operator: Operator) -> tuple[Any, float, bool]:
+        """A solver of ``(W - sigma I) x = b``: the eigensolver's, when there is one."""
+        eps = operator.handle.get("eps")
+        if eps is not None:
+            return eps.getST().getKSP(), operator.handle["eps_shift"], False
+        PETSc = petsc()
+        W = operator.handle["W"]
+        shift = SHIFT_FACTOR * max(operator.check.max_exit_rate, np.finfo(float).tiny)
+        shifted = W.copy()
+        shifted.shift(-shift)
+        ksp = PETSc.KSP().create(comm=W.getComm())
+        ksp.setOperators(shifted)
+        if self.inner == "direct":
+            ksp.setType("preonly")
+            ksp.getPC().setType("lu")
+            ksp.getPC().setFactorSolverType("mumps")
+        else:
+            ksp.setType("gmres")
+            ksp.setTolerances(rtol=self.inner_tolerance, atol=0.0, max_it=10000)
+            ksp.getPC().setType(PRECONDITIONERS[self.preconditioner])
+        ksp.setOptionsPrefix("gapline_stationary_")
+        self._apply_user_options()
+        ksp.setFromOptions()
+        return ksp, shift, True
+
+    def _provenance(self, operator: Operator) -> dict[str, Any]:
+        peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0
+        return {"backend": self.name, "ranks": self.world.size,
+                "peak_memory_mib_per_rank": [round(v, 1) for v in self.world.allgather(peak)],
+                "petsc_options": {str(k): str(v) for k, v in self.options.items()}}
+
+
+def inverse_iteration(solve: Any, start: np.ndarray, total: Any) -> tuple[np.ndarray, int, float]:
+    """Stationary vector by inverse iteration ``p <- solve(p) / sum``, judged by the
+    contraction of the change between steps (see the scipy backend's docstring: the error is
+    about ``rho / (1 - rho)`` times the change once the rate ``rho`` has settled; from memory).
+    ``start``/results are local rows; ``total`` sums a number over ranks."""
+    p = start
+    steps, change, ratios = 0, math.inf, [math.nan, math.nan]
+    estimate = math.inf
+    while steps < STATIONARY_MAX_STEPS:
+        steps += 1
+        following = solve(p)
+        following /= total(float(following.sum()))
+        previous, change = change, total(float(np.abs(following - p).sum()))
+        p = following
+        if change >= previous:
+            estimate = min(estimate, change) if math.isfinite(estimate) else change
+            break
+        ratios = [ratios[1], change / previous if math.isfinite(previous) else math.nan]
+        settled = ratios[1] < 1 and abs(ratios[1] - ratios[0]) <= 0.1 * ratios[1]
+        estimate = 2 * change * ratios[1] / (1 - ratios[1]) if settled else math.inf
+        if change <= 1e-15 and settled:
+            break
+    return p, steps, float(estimate)
