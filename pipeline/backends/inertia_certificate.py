@@ -196,9 +196,12 @@ def certify_by_inertia(
     S.destroy()
     certified = (zero == 0 and negative == captured and not tiny_g and bound < 1.0
                  and not dependent)
-    if dependent:
+    if dependent and k < values.size:
         note = (f"NOT CERTIFIED: the {values.size} found modes have only {k} independent "
                 "eigenvectors (defective or duplicated); the multiplicities are not proven")
+    elif dependent:
+        note = (f"NOT CERTIFIED: the {values.size} found modes span {k} real directions: the "
+                "set is not closed under conjugation (a copy of a complex pair is missing)")
     elif certified:
         note = (f"all {k} eigenvalues with real part >= {level:.6e} were found (inertia of "
                 f"tI - S at t = {shift:.6e}: {negative} above t, all in the found span)")

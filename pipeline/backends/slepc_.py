@@ -29,6 +29,7 @@ from pipeline.backends.conditioning import conditions_from_products
 from pipeline.backends.petsc_tools import (
     apply,
     apply_transpose,
+    global_norms,
     gram,
     normalize_columns,
     petsc,
@@ -222,11 +223,20 @@ class SlepcBackend(Backend):
         modes.info.update(self._provenance(operator))
         return modes
 
-    def _spectral_transform(self, eps: Any, shift: float) -> dict[str, Any]:
-        """Shift-and-invert about ``shift`` with the configured inner solver."""
-        st = eps.getST()
-        st.setType("sinvert")
-        ksp = st.getKSP()
+    def _shifted_solver(self, operator: Operator) -> dict[str, Any]:
+        """The solver of ``(W - sigma I) x = b`` (MUMPS LU or GMRES + preconditioner),
+        built once per operator and shared by the eigensolver, the stationary law and the
+        left vectors (transposed solves)."""
+        cached = operator.handle.get("shifted")
+        if cached is not None:
+            return cached
+        PETSc = petsc()
+        W = operator.handle["W"]
+        shift = SHIFT_FACTOR * max(operator.check.max_exit_rate, np.finfo(float).tiny)
+        shifted = W.copy()
+        shifted.shift(-shift)
+        ksp = PETSc.KSP().create(comm=W.getComm())
+        ksp.setOperators(shifted)
         pc = ksp.getPC()
         if self.inner == "direct":
             ksp.setType("preonly")
@@ -236,11 +246,38 @@ class SlepcBackend(Backend):
         else:
             ksp.setType("gmres")
             ksp.setTolerances(rtol=self.inner_tolerance, atol=0.0, max_it=10000)
-            pc_type = PRECONDITIONERS[self.preconditioner]
-            pc.setType(pc_type)
-            inner = {"inner_solver": "iterative", "ksp": "gmres", "pc": pc_type,
+            pc.setType(PRECONDITIONERS[self.preconditioner])
+            inner = {"inner_solver": "iterative", "ksp": "gmres",
+                     "pc": PRECONDITIONERS[self.preconditioner],
                      "inner_tolerance": self.inner_tolerance}
-        return inner
+        ksp.setOptionsPrefix("st_")  # the prefix users know from SLEPc's shift-and-invert
+        self._apply_user_options()
+        ksp.setFromOptions()
+        started = time.perf_counter()
+        ksp.setUp()
+        setup_seconds = time.perf_counter() - started
+        log(f"solve: {inner['inner_solver']} solver of W - {shift:.2e} I ready in "
+            f"{setup_seconds:.1f} s")
+        cached = {"ksp": ksp, "matrix": shifted, "shift": shift, "inner": inner,
+                  "setup_seconds": setup_seconds, "solves": 0,
+                  "ksp_type": ksp.getType(), "pc_type": pc.getType()}
+        operator.handle["shifted"] = cached
+        return cached
+
+    def _solve_shifted(self, operator: Operator, rhs: np.ndarray,
+                       transpose: bool = False) -> np.ndarray:
+        """``(W - sigma I)^-1 rhs`` (or its transpose) for local rows ``rhs``."""
+        solver = self._shifted_solver(operator)
+        x, y = solver["matrix"].createVecs()
+        x.getArray()[:] = rhs
+        (solver["ksp"].solveTranspose if transpose else solver["ksp"].solve)(x, y)
+        solver["solves"] += 1
+        reason = solver["ksp"].getConvergedReason()
+        if reason < 0:
+            raise SolverError(f"solve.inner: the inner solve of shift-and-invert failed (PETSc "
+                              f"reason {reason}); use solve.inner = 'direct' or another "
+                              "solve.preconditioner")
+        return y.getArray(readonly=True).copy()
 
     def _apply_user_options(self) -> None:
         if not self.options:
@@ -251,54 +288,114 @@ class SlepcBackend(Backend):
                 value = "true" if value else "false"
             options.setValue(str(key), str(value))
 
-    def _eigensolve(self, W: Any, shift: float, nev: int, ncv: int, tolerance: float,
-                    initial: np.ndarray | None, rows: tuple[int, int]) -> dict[str, Any]:
+    def _eigensolve(self, operator: Operator, nev: int, ncv: int, tolerance: float,
+                    initial: np.ndarray | None, stationary: np.ndarray | None,
+                    transpose: bool = False) -> dict[str, Any]:
+        """Krylov–Schur on ``Q (W - sigma I)^-1`` (or its transpose), ranked by the real part
+        of the back-transformed eigenvalue ``sigma + 1/theta``.
+
+        ``Q = I - p 1^T`` removes the stationary mode (``p``, local rows; ``1^T`` is the left
+        null vector of a conserving W): it maps its huge eigenvalue ``-1/sigma`` to 0 and
+        leaves every other eigenvector unchanged, so it cannot swamp the Krylov basis
+        (Wielandt-type deflation; Saad 2011, Numerical Methods for Large Eigenvalue
+        Problems, 4.2). For ``W^T`` the projector is ``Q^T = I - 1 p^T``.
+
+        With ``p`` known the search runs in balanced coordinates, on ``D^-1 Q (W - sigma
+        I)^-1 D`` with ``D = diag(sqrt(p))``: a similarity (same eigenvalues), symmetric for
+        reversible chains, so the Schur vectors give accurate eigenvectors even where W
+        itself is far from normal (a biased chain with walls). ``initial`` and the returned
+        vectors are in the original coordinates.
+        """
         from slepc4py import SLEPc
 
         PETSc = petsc()
+        W = operator.handle["W"]
+        solver = self._shifted_solver(operator)
+        shift = solver["shift"]
+        start, stop = operator.handle["rows"]
+        backend = self
+
+        if stationary is not None:
+            weights = np.sqrt(np.maximum(np.abs(stationary) / max(self.world.max(float(
+                np.abs(stationary).max(initial=0.0))), 1e-300), 1e-100))
+            # transposed problem: balanced by D^-1 (W^T is balanced by the inverse scaling)
+            scaling = 1.0 / weights if transpose else weights
+            null = stationary / scaling if not transpose else scaling  # D^-1 p or D 1
+            null = null / np.sqrt(self.world.sum(float(null @ null)))
+        else:
+            scaling, null = np.ones(stop - start), None
+
+        class ShiftedInverse:  # the operator SLEPc sees: D^-1 Q (W - sigma I)^-1 D
+            def mult(self, matrix: Any, x: Any, y: Any) -> None:
+                result = backend._solve_shifted(operator, scaling * x.getArray(readonly=True),
+                                                transpose=transpose) / scaling
+                if null is not None:  # the balanced projector is orthogonal: I - c c^T
+                    result -= null * backend.world.sum(float(null @ result))
+                y.getArray()[:] = result
+
+        m = stop - start
+        shell = PETSc.Mat().createPython(((m, operator.n_states), (m, operator.n_states)),
+                                         ShiftedInverse(), comm=W.getComm())
+        shell.setUp()
         eps = SLEPc.EPS().create(comm=W.getComm())
-        eps.setOperators(W)
+        eps.setOperators(shell)
         eps.setProblemType(SLEPc.EPS.ProblemType.NHEP)
         eps.setType(SLEPc.EPS.Type.KRYLOVSCHUR)
-        eps.setTarget(shift)
-        # Rank by real part (back-transformed), not by distance to the shift: complex slow
-        # modes with large imaginary parts are exactly those a nearest-first search skips.
-        eps.setWhichEigenpairs(SLEPc.EPS.Which.TARGET_REAL)
-        eps.setDimensions(nev=nev, ncv=ncv, mpd=ncv)
+        # Rank by the real part of the original eigenvalue, not by distance to the shift:
+        # complex slow modes with large imaginary parts are exactly those a nearest-first
+        # search skips. theta ~ 0 (the deflated stationary mode, back to rounding level)
+        # would back-transform to |lambda| >> ||W||: no eigenvalue of a generator lies there
+        # (Gershgorin: |lambda - W_jj| <= exit rate), so such values rank last and are
+        # dropped.
+        largest = 2.0 * operator.check.norm1 + abs(shift)
+
+        def real_part(theta: complex) -> float:
+            theta = complex(theta)
+            if abs(theta) * largest <= 1.0:
+                return -np.inf
+            return (shift + 1.0 / theta).real
+
+        def by_real_part(a: complex, b: complex, *_: Any) -> int:
+            first, second = real_part(a), real_part(b)
+            return -1 if first > second else (1 if first < second else 0)
+
+        eps.setWhichEigenpairs(SLEPc.EPS.Which.USER)
+        eps.setEigenvalueComparison(by_real_part)
+        eps.setDimensions(nev=nev, ncv=ncv)
         eps.setTolerances(tol=tolerance, max_it=100000)
-        inner = self._spectral_transform(eps, shift)
+        eps.getST().setType("shift")  # the shell already is the spectral transformation
+        base = shell.createVecRight()
+        seeds = initial if initial is not None else start_vector(start, stop)[:, None]
         space = []
-        start, stop = rows
-        base = W.createVecRight()
-        vectors = initial if initial is not None else start_vector(start, stop)[:, None]
-        for column in np.atleast_2d(vectors.T):  # a loop over seed vectors
+        for column in np.atleast_2d(np.asarray(seeds).T):  # a loop over seed vectors
             vec = base.duplicate()
-            vec.getArray()[:] = column
+            vec.getArray()[:] = column / scaling
             space.append(vec)
         eps.setInitialSpace(space)
         self._apply_user_options()
         eps.setFromOptions()
         started = time.perf_counter()
+        solves_before = solver["solves"]
         eps.solve()
         seconds = time.perf_counter() - started
         converged = eps.getConverged()
-        values = np.array([eps.getEigenvalue(i) for i in range(converged)], dtype=complex)
-        local = np.empty((stop - start, converged), dtype=complex)
-        vr, vi = W.createVecs()
+        thetas = np.array([eps.getEigenvalue(i) for i in range(converged)], dtype=complex)
+        keep = np.abs(thetas) * largest > 1.0
+        local = np.empty((m, converged), dtype=complex)
+        vr, vi = shell.createVecs()
         for i in range(converged):  # a loop over modes
             eps.getEigenvector(i, vr, vi)
-            local[:, i] = vr.getArray(readonly=True) + 1j * vi.getArray(readonly=True)
-        st = eps.getST()
-        ksp = st.getKSP()
+            local[:, i] = (vr.getArray(readonly=True) + 1j * vi.getArray(readonly=True)) * scaling
+        nev_used, ncv_used, _ = eps.getDimensions()
         outcome = {
-            "values": values, "vectors": local, "seconds": seconds,
-            "iterations": int(eps.getIterationNumber()),
-            "nev": int(eps.getDimensions()[0]), "ncv": int(eps.getDimensions()[1]),
-            "reason": int(eps.getConvergedReason()), "inner": inner,
-            "ksp_type": ksp.getType(), "pc_type": ksp.getPC().getType(),
-            "eps": eps,
+            "values": shift + 1.0 / thetas[keep], "vectors": local[:, keep],
+            "seconds": seconds, "iterations": int(eps.getIterationNumber()),
+            "nev": int(nev_used), "ncv": int(ncv_used),
+            "reason": int(eps.getConvergedReason()),
+            "solves": solver["solves"] - solves_before,
         }
-        del PETSc
+        eps.destroy()
+        shell.destroy()
         return outcome
 
     def _krylov_modes(self, operator: Operator, count: int, tolerance: float,
@@ -308,101 +405,115 @@ class SlepcBackend(Backend):
         rows = operator.handle["rows"]
         n = operator.n_states
         scale = operator.check.norm1
-        shift = SHIFT_FACTOR * max(operator.check.max_exit_rate, np.finfo(float).tiny)
-        # Ask for a few more than wanted: the certificate needs the next real part below
-        # the last wanted group, to put its test shift in the gap.
-        nev = min(n - 2, count + max(4, count // 2))
-        ncv_cap = min(n - 1, max(max_search, nev + 2))
+        solver = self._shifted_solver(operator)
+        stationary = None
+        if operator.check.conserving:
+            stationary = self._stationary_vector(operator)[0]
+        deflated = int(stationary is not None)
+        # Ask for more than wanted: the certificate needs the next real part below the last
+        # wanted group, to put its test shift in the gap.
+        nev = min(n - 2, count + max(4, count // 2)) - deflated
+        cap = max(min(max_search, n - 2) - deflated, 1)
         rounds: list[dict[str, Any]] = []
         initial = None
         certificate: dict[str, Any] = {}
         certified = False
         eps_seconds = 0.0
         while True:
-            ncv = min(ncv_cap, max(4 * nev, 64))
-            log(f"solve: Krylov–Schur, shift-and-invert about {shift:.2e}, {nev} modes by "
-                f"real part (subspace {ncv})")
-            result = self._eigensolve(W, shift, nev, ncv, tolerance, initial, rows)
+            nev = max(1, min(nev, cap))
+            ncv = min(n - 1, max(2 * nev + 8, nev + 24, 48))
+            log(f"solve: Krylov–Schur on the shifted inverse about {solver['shift']:.2e}, "
+                f"{nev} modes by real part (subspace {ncv})")
+            result = self._eigensolve(operator, nev, ncv, tolerance, initial, stationary)
             eps_seconds += result["seconds"]
             values, local = result["values"], result["vectors"]
-            if values.size == 0:
-                raise SolverError("solve: Krylov–Schur converged no eigenvalue; raise "
-                                  "solve.tolerance or use solve.inner = 'direct'")
+            if stationary is not None:
+                values = np.concatenate([[0.0], values])
+                local = np.column_stack([stationary.astype(complex), local])
             local = normalize_columns(self.world, local, rows[0])
+            values = self._rayleigh_quotients(W, local)
             residuals = self._residuals(W, values, local, scale)
             tol = grouping_tolerance(values, scale)
             chosen, group_complete = take_slowest(values, count, tol)
             threshold = float(values[chosen].real.min())
             below = values.real[values.real < threshold - tol]
-            round_record = {"nev": result["nev"], "ncv": result["ncv"],
-                            "converged": int(values.size), "iterations": result["iterations"],
-                            "seconds": result["seconds"]}
+            record = {"nev": result["nev"], "ncv": result["ncv"],
+                      "converged": int(values.size), "iterations": result["iterations"],
+                      "inner_solves": result["solves"], "seconds": result["seconds"]}
+            rounds.append(record)
+            exhausted = len(rounds) >= MAX_ROUNDS or nev >= cap
             if below.size == 0:
-                round_record["note"] = "no converged mode below the last wanted group"
-                rounds.append(round_record)
-                if nev >= min(max_search, n - 2) or len(rounds) >= MAX_ROUNDS:
-                    certificate = {"kind": "inertia", "note": "NOT CERTIFIED: the search never "
-                                   "reached below the last wanted group; raise solve.max_search"}
+                record["note"] = "no converged mode below the last wanted group"
+                certificate = {"kind": "inertia", "note": "NOT CERTIFIED: the search never "
+                               "reached below the last wanted group; raise solve.max_search"}
+                if exhausted:
                     break
-                nev = min(n - 2, max_search, 2 * nev)
-                initial = local.real
+                nev, initial = 2 * nev, local.real
                 continue
             test_shift = 0.5 * (threshold + float(below.max()))
             if self.inner != "direct":
                 certificate = {"kind": "none", "note": "NOT CERTIFIED: the inertia certificate "
                                "needs a factorization; use solve.inner = 'direct' to certify"}
-                rounds.append(round_record)
                 break
             above = values.real > test_shift
-            scaling = self._balancing(operator, values, local)
+            scaling = self._balancing(values, local)
             cert = self._certify(W, scaling, values[above], local[:, above], test_shift)
-            round_record.update(missing=cert.missing, certified=cert.certified,
-                                certificate_seconds=cert.seconds)
-            rounds.append(round_record)
+            record.update(missing=cert.missing, certified=cert.certified,
+                          certificate_seconds=cert.seconds)
             certificate = cert.as_dict()
             certified = cert.certified
             log(f"solve: certificate at t = {test_shift:.3e}: {cert.above_shift} above t, "
                 f"{cert.captured} in the found span -> "
                 + ("certified" if certified else f"{cert.missing} missing"))
-            if certified or len(rounds) >= MAX_ROUNDS or nev >= min(max_search, n - 2):
+            if certified or exhausted:
                 break
-            nev = min(n - 2, max_search, nev + max(cert.missing, 1) + 4)
-            initial = local.real
-        eps = result.pop("eps")
-        operator.handle["eps"] = eps  # its factorization serves the stationary solve
-        operator.handle["eps_shift"] = shift
-        # Left vectors (condition numbers): the balanced guess is exact for a normal
-        # D^-1 W D; when its residual says otherwise, solve for them on W^T.
-        left_values, left, left_method = self._left_vectors(operator, values, local, scale,
-                                                            tolerance, shift)
-        products = (gram(self.world, local, local), gram(self.world, left, left),
-                    gram(self.world, left, local))
+            nev, initial = nev + max(cert.missing, 1) + 4, local.real
+        # Condition numbers and error estimates in the balanced coordinates D^-1 W D (a
+        # similarity, so a first-order bound there bounds the same eigenvalue): for
+        # reversible chains they are those of a symmetric matrix, where W's own basis would
+        # multiply both the residual and the condition by the conditioning of D.
+        scaling = self._balancing(values, local)
+        balanced = local / scaling[:, None]
+        balanced = balanced / global_norms(self.world, balanced)[None, :]
+        balanced_residuals = self._residuals(W, values, balanced, scale, scaling)
+        left_values, left, left_method = self._left_vectors(operator, values, balanced,
+                                                            scaling, scale, tolerance,
+                                                            stationary)
+        products = (gram(self.world, balanced, balanced), gram(self.world, left, left),
+                    gram(self.world, left, balanced))
         condition = conditions_from_products(values, left_values, *products,
                                              CLUSTER_FACTOR * scale, chosen)
+        del balanced, left
         values_kept, residuals_kept = values[chosen], residuals[chosen]
         info = {
             **self._provenance(operator),
             "searched": int(values.size),
             "rounds": rounds,
-            "shift": shift,
+            "shift": solver["shift"],
             "eigensolver_seconds": eps_seconds,
+            "inner_setup_seconds": solver["setup_seconds"],
+            "inner_solves": solver["solves"],
             "left_vectors": left_method,
-            **result["inner"],
-            "ksp_type": result["ksp_type"],
-            "pc_type": result["pc_type"],
+            "condition_coordinates": "balanced D^-1 W D, D = diag(sqrt(p)) (p stationary or "
+                                     "Perron vector); error estimates = condition x balanced "
+                                     "residual x ||W||_1",
+            **solver["inner"],
+            "ksp_type": solver["ksp_type"],
+            "pc_type": solver["pc_type"],
             "iterations": int(sum(r["iterations"] for r in rounds)),
         }
         if not certified:
             warn(f"solve: {certificate.get('note')}")
         with np.errstate(invalid="ignore", over="ignore"):
             estimates = np.where(np.isfinite(condition),
-                                 condition * residuals_kept * scale, np.inf)
+                                 condition * balanced_residuals[chosen] * scale, np.inf)
         return Modes(
             values=values_kept.astype(np.complex128),
             residuals=residuals_kept,
             vectors=local[:, chosen] if want_vectors else None,
-            method=(f"Krylov–Schur (SLEPc), shift-and-invert ({result['inner']['inner_solver']}"
-                    "), ranked by real part, inertia certificate"),
+            method=(f"Krylov–Schur (SLEPc) on the shifted inverse "
+                    f"({solver['inner']['inner_solver']}), ranked by real part, inertia "
+                    "certificate"),
             certified=certified,
             certificate=certificate,
             group_complete=group_complete,
@@ -413,14 +524,27 @@ class SlepcBackend(Backend):
             vector_rows=rows if want_vectors else None,
         )
 
-    def _residuals(self, W: Any, values: np.ndarray, local: np.ndarray,
-                   scale: float) -> np.ndarray:
-        difference = apply(W, local) - local * values[None, :]
+    def _rayleigh_quotients(self, W: Any, local: np.ndarray) -> np.ndarray:
+        products = apply(W, local)
+        top = self.world.sum(np.ascontiguousarray(np.einsum("ij,ij->j", local.conj(),
+                                                            products)))
+        bottom = self.world.sum(np.ascontiguousarray(np.einsum("ij,ij->j", local.conj(),
+                                                               local).real))
+        return top / bottom
+
+    def _residuals(self, W: Any, values: np.ndarray, local: np.ndarray, scale: float,
+                   scaling: np.ndarray | None = None) -> np.ndarray:
+        """``||W v - lambda v|| / ||W||_1`` (or of ``D^-1 W D`` with ``D = diag(scaling)``)
+        for unit columns."""
+        if scaling is None:
+            difference = apply(W, local) - local * values[None, :]
+        else:
+            difference = (apply(W, local * scaling[:, None]) / scaling[:, None]
+                          - local * values[None, :])
         local_sq = np.einsum("ij,ij->j", difference.conj(), difference).real
         return np.sqrt(self.world.sum(np.ascontiguousarray(local_sq))) / max(scale, 1e-300)
 
-    def _balancing(self, operator: Operator, values: np.ndarray,
-                   local: np.ndarray) -> np.ndarray:
+    def _balancing(self, values: np.ndarray, local: np.ndarray) -> np.ndarray:
         """Local rows of ``D = diag(sqrt(p))``, ``p`` the stationary (Perron) vector: the
         eigenvector of the slowest mode, floored so ``D`` stays positive (any positive ``D``
         keeps the certificate rigorous; ``p`` makes it sharp)."""
@@ -436,34 +560,32 @@ class SlepcBackend(Backend):
         self._apply_user_options()
         return certify_by_inertia(self.world, W, scaling, values, vectors, shift)
 
-    def _left_vectors(self, operator: Operator, values: np.ndarray, local: np.ndarray,
-                      scale: float, tolerance: float, shift: float
-                      ) -> tuple[np.ndarray, np.ndarray, str]:
+    def _left_vectors(self, operator: Operator, values: np.ndarray, balanced: np.ndarray,
+                      scaling: np.ndarray, scale: float, tolerance: float,
+                      stationary: np.ndarray | None) -> tuple[np.ndarray, np.ndarray, str]:
+        """Left eigenvectors in balanced coordinates (``l^H Wb = mu l^H``, ``Wb = D^-1 W
+        D``). First guess: the right ones (exact when ``Wb`` is normal), accepted when their
+        left residual ``||Wb^T l - conj(mu) l||`` is small; otherwise a Krylov–Schur solve
+        on ``W^T`` with transposed solves of the same factorization."""
         W = operator.handle["W"]
-        top = int(np.argmax(values.real))
-        p = np.abs(local[:, top].real)
-        peak = self.world.max(float(p.max(initial=0.0)))
-        weight = np.maximum(p / max(peak, 1e-300), 1e-200)
-        guess = local / weight[:, None]  # l = D^-2 r
-        guess = guess / np.maximum(
-            np.sqrt(self.world.sum(np.einsum("ij,ij->j", guess.conj(), guess).real)), 1e-300)
-        left_residual = apply_transpose(W, guess) - guess * values.conj()[None, :]
-        norms = np.sqrt(self.world.sum(
-            np.ascontiguousarray(np.einsum("ij,ij->j", left_residual.conj(),
-                                           left_residual).real))) / max(scale, 1e-300)
+        guess = balanced
+        left_residual = (apply_transpose(W, guess / scaling[:, None]) * scaling[:, None]
+                         - guess * values.conj()[None, :])
+        norms = global_norms(self.world, left_residual) / max(scale, 1e-300)
         if float(norms.max(initial=0.0)) <= max(1e3 * tolerance, 1e-9):
-            return values.copy(), guess, "balanced guess D^-2 r (left residual checked)"
-        transposed = W.transpose(petsc().Mat())
-        try:
-            result = self._eigensolve(transposed, shift, values.size,
-                                      min(operator.n_states - 1, max(4 * values.size, 64)),
-                                      tolerance, None, operator.handle["rows"])
-        finally:
-            transposed.destroy()
-        result.pop("eps").destroy()
-        # W^T y = mu y means conj(y)^H W = mu conj(y)^H: the left vector is conj(y).
-        return (result["values"], np.conj(result["vectors"]),
-                "Krylov–Schur on W^T (the balanced guess did not fit)")
+            return values.copy(), guess, "right vectors of D^-1 W D (left residual checked)"
+        deflated = int(stationary is not None)
+        result = self._eigensolve(operator, max(values.size - deflated, 1),
+                                  min(operator.n_states - 1, max(2 * values.size + 8, 48)),
+                                  tolerance, None, stationary, transpose=True)
+        left_values, left = result["values"], result["vectors"]
+        if stationary is not None:  # the left null vector of a conserving W is 1
+            left_values = np.concatenate([[0.0], left_values])
+            left = np.column_stack([np.ones(left.shape[0], dtype=complex), left])
+        # W^T y = mu y means conj(y)^H W = mu conj(y)^H: the left vector is conj(y); in
+        # balanced coordinates it is D conj(y).
+        return (np.conj(left_values), np.conj(left) * scaling[:, None],
+                "Krylov–Schur on W^T with transposed solves (the right vectors did not fit)")
 
     # -- stationary distribution ---------------------------------------------------------
 
@@ -474,67 +596,49 @@ class SlepcBackend(Backend):
         started = time.perf_counter()
         W = operator.handle["W"]
         start, stop = operator.handle["rows"]
-        ones, row_sums = W.createVecs()
-        ones.set(1.0)
-        W.mult(ones, row_sums)  # W 1 = 0 too: doubly stochastic, the uniform law is exact
-        row_defect = self.world.max(float(np.abs(row_sums.getArray(readonly=True)).max(
-            initial=0.0)))
-        steps, estimate = 0, 0.0
-        if row_defect <= 1e-14 * operator.check.norm1:
-            p = np.full(stop - start, 1.0 / operator.n_states)
-            method = "uniform (W 1 = 0 and 1^T W = 0: the uniform law is stationary)"
-        else:
-            ksp, shift, owned = self._shifted_solver(operator)
-            work = W.createVecs()
-
-            def solve(x: np.ndarray) -> np.ndarray:
-                work[0].getArray()[:] = x
-                ksp.solve(work[0], work[1])
-                return work[1].getArray(readonly=True).copy()
-
-            p, steps, estimate = inverse_iteration(
-                solve, np.full(stop - start, 1.0 / operator.n_states), self.world.sum)
-            if owned:
-                ksp.destroy()
-            method = f"inverse iteration with shift-and-invert about {shift:.2e}"
-            if not estimate <= STATIONARY_TARGET:
-                warn(f"solve.stationary: inverse iteration stopped after {steps} steps with an "
-                     f"estimated error of {estimate:.1e}")
+        p, method, steps, estimate = self._stationary_vector(operator)
         negative_mass = float(self.world.sum(float(-p[p < 0].sum()))) + 0.0
         p = np.clip(p, 0.0, None)
-        p /= self.world.sum(float(p.sum()))
+        p = p / self.world.sum(float(p.sum()))
         image = apply(W, p)
         residual = self.world.sum(float(np.abs(image).sum())) / max(operator.check.norm1,
                                                                     1e-300)
         info = {"iterations": steps, "error_estimate": estimate,
                 **self._provenance(operator)}
-        return Stationary(p, float(residual), negative_mass, method,
-                          time.perf_counter() - started, info=info, rows=(start, stop))
+        seconds = operator.info.get("stationary_seconds", 0.0) + time.perf_counter() - started
+        return Stationary(p, float(residual), negative_mass, method, seconds, info=info,
+                          rows=(start, stop))
 
-    def _shifted_solver(self, operator: Operator) -> tuple[Any, float, bool]:
-        """A solver of ``(W - sigma I) x = b``: the eigensolver's, when there is one."""
-        eps = operator.handle.get("eps")
-        if eps is not None:
-            return eps.getST().getKSP(), operator.handle["eps_shift"], False
-        PETSc = petsc()
+    def _stationary_vector(self, operator: Operator) -> tuple[np.ndarray, str, int, float]:
+        """Null vector of a conserving W (local rows, sum 1), before clipping (cached)."""
+        cached = operator.handle.get("stationary")
+        if cached is not None:
+            return cached
+        started = time.perf_counter()
         W = operator.handle["W"]
-        shift = SHIFT_FACTOR * max(operator.check.max_exit_rate, np.finfo(float).tiny)
-        shifted = W.copy()
-        shifted.shift(-shift)
-        ksp = PETSc.KSP().create(comm=W.getComm())
-        ksp.setOperators(shifted)
-        if self.inner == "direct":
-            ksp.setType("preonly")
-            ksp.getPC().setType("lu")
-            ksp.getPC().setFactorSolverType("mumps")
+        start, stop = operator.handle["rows"]
+        n = operator.n_states
+        ones, row_sums = W.createVecs()
+        ones.set(1.0)
+        W.mult(ones, row_sums)  # W 1 = 0 as well as 1^T W = 0: the uniform law is exact
+        row_defect = self.world.max(float(np.abs(row_sums.getArray(readonly=True)).max(
+            initial=0.0)))
+        if row_defect <= 1e-14 * operator.check.norm1:
+            result = (np.full(stop - start, 1.0 / n),
+                      "uniform (W 1 = 0 and 1^T W = 0: the uniform law is stationary)", 0, 0.0)
         else:
-            ksp.setType("gmres")
-            ksp.setTolerances(rtol=self.inner_tolerance, atol=0.0, max_it=10000)
-            ksp.getPC().setType(PRECONDITIONERS[self.preconditioner])
-        ksp.setOptionsPrefix("gapline_stationary_")
-        self._apply_user_options()
-        ksp.setFromOptions()
-        return ksp, shift, True
+            shift = self._shifted_solver(operator)["shift"]
+            p, steps, estimate = inverse_iteration(
+                lambda x: self._solve_shifted(operator, x), np.full(stop - start, 1.0 / n),
+                self.world.sum)
+            if not estimate <= STATIONARY_TARGET:
+                warn(f"solve.stationary: inverse iteration stopped after {steps} steps with an "
+                     f"estimated error of {estimate:.1e} (sum of |p - p_exact|)")
+            result = (p, f"inverse iteration with the solver of W - {shift:.2e} I", steps,
+                      estimate)
+        operator.handle["stationary"] = result
+        operator.info["stationary_seconds"] = time.perf_counter() - started
+        return result
 
     def _provenance(self, operator: Operator) -> dict[str, Any]:
         peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0

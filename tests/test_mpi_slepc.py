@@ -1,0 +1,178 @@
+"""The slepc backend under a real ``mpiexec -n 2``: the same numbers as on one rank and as
+the scipy backend (to 1e-9), the published spectra (through ``verify``), stores written in
+whole chunks per rank, provenance, and errors that reach every rank (no hang)."""
+
+from __future__ import annotations
+
+import os
+import shutil
+import subprocess
+import sys
+from pathlib import Path
+
+import numpy as np
+import pytest
+import zarr
+
+from pipeline.parallel import ownership_ranges, state_chunk
+
+from .conftest import multiset_distance, write_config
+
+MPIEXEC = shutil.which("mpiexec")
+REPO = Path(__file__).resolve().parents[1]
+pytestmark = [
+    pytest.mark.skipif(MPIEXEC is None, reason="mpiexec is not installed (make installs "
+                       "openmpi-bin)"),
+    pytest.mark.slow,
+]
+
+# name: (lattice fields, modes). Sources of the exact spectra: ring and chain formulas
+# (Gray 2006, Toeplitz and Circulant Matrices, eq. 3.7; reflecting chain 0 and
+# -(u+v) + 2 sqrt(uv) cos(pi k/L), from memory), torus = their Kronecker sum (Horn and
+# Johnson 1991, 4.4); verify compares with them (pipeline.analytic), checked below.
+CASES = {
+    "ring": ('size = 400\nforward = 1.3\nbackward = 0.4\n', 9),
+    "chain": ('size = 200\nboundary = "reflecting"\nforward = 1.04\nbackward = 0.96\n', 8),
+    "torus": ('size = [48, 48]\nforward = [1.0, 0.8]\nbackward = [0.6, 0.8]\n', 13),
+}
+
+
+def _config(directory: Path, name: str, backend: str) -> Path:
+    fields, modes = CASES[name]
+    text = (f'[run]\nname = "{name}"\n[model]\ntype = "lattice"\n{fields}'
+            f'[solve]\nmodes = {modes}\nbackend = "{backend}"\nmethod = "shift-invert"\n'
+            "vectors = true\n")
+    return write_config(directory, f"{name}-{backend}", text)
+
+
+def _run(config: Path, store: Path, ranks: int) -> subprocess.CompletedProcess:
+    env = dict(os.environ, GAPLINE_PROGRESS="off", OMP_NUM_THREADS="1")
+    for variable in ("OMPI_COMM_WORLD_SIZE", "PMI_SIZE", "PMIX_SIZE", "PMIX_RANK",
+                     "MPI_LOCALNRANKS"):
+        env.pop(variable, None)
+    command = [sys.executable, "-m", "pipeline", "run", str(config), "--store", str(store)]
+    if ranks > 1:
+        launcher = [MPIEXEC, "-n", str(ranks), "--oversubscribe"]
+        if os.geteuid() == 0:
+            launcher.append("--allow-run-as-root")  # Open MPI refuses root otherwise
+        command = launcher + command
+    return subprocess.run(command, capture_output=True, text=True, env=env, timeout=300,
+                          cwd=REPO)
+
+
+@pytest.fixture(scope="module")
+def stores(tmp_path_factory):
+    """Every case run by scipy (1 process), slepc on 1 rank and slepc on 2 ranks."""
+    directory = tmp_path_factory.mktemp("mpi")
+    results = {}
+    for name in CASES:
+        for label, backend, ranks in (("scipy", "scipy", 1), ("slepc-1", "slepc", 1),
+                                      ("slepc-2", "slepc", 2)):
+            store = directory / f"{name}-{label}.zarr"
+            outcome = _run(_config(directory, name, backend), store, ranks)
+            assert outcome.returncode == 0, outcome.stderr[-3000:]
+            results[name, label] = zarr.open_group(str(store / name), mode="r")
+    return results
+
+
+@pytest.mark.parametrize("name", list(CASES))
+@pytest.mark.parametrize("label", ["slepc-1", "scipy"])
+def test_two_ranks_give_the_same_eigenvalues(stores, name, label):
+    two = stores[name, "slepc-2"]
+    other = stores[name, label]
+    norm1 = float(two["assemble"].attrs["norm1"])
+    distance = multiset_distance(two["spectrum/eigenvalues"][:],
+                                 other["spectrum/eigenvalues"][:])
+    assert distance <= 1e-9 * norm1
+
+
+@pytest.mark.parametrize("name", list(CASES))
+@pytest.mark.parametrize("label", ["slepc-1", "scipy"])
+def test_two_ranks_give_the_same_stationary_law(stores, name, label):
+    two = stores[name, "slepc-2"]["stationary/distribution"][:]
+    other = stores[name, label]["stationary/distribution"][:]
+    assert np.abs(two - other).sum() <= 1e-9
+
+
+@pytest.mark.parametrize("name", list(CASES))
+def test_two_ranks_give_the_same_eigenvectors(stores, name):
+    """Equal invariant subspaces per group of equal eigenvalues: the largest principal
+    angle (Golub and Van Loan 2013, Matrix Computations, 6.4.3) is ~0."""
+    two, one = stores[name, "slepc-2"], stores[name, "slepc-1"]
+    values = two["spectrum/eigenvalues"][:]
+    norm1 = float(two["assemble"].attrs["norm1"])
+    a, b = two["spectrum/vectors"][:], one["spectrum/vectors"][:]
+    other_values = one["spectrum/eigenvalues"][:]
+    for value in np.unique(np.round(values, 9)):  # a loop over groups of modes
+        mine = np.abs(values - value) <= 1e-8 * norm1
+        theirs = np.abs(other_values - value) <= 1e-8 * norm1
+        if mine.sum() != theirs.sum():
+            continue  # a group cut at the requested count can differ in which copy is kept
+        qa, _ = np.linalg.qr(a[:, mine])
+        qb, _ = np.linalg.qr(b[:, theirs])
+        cosines = np.linalg.svd(qa.conj().T @ qb, compute_uv=False)
+        assert cosines.min() >= 1 - 1e-8
+
+
+@pytest.mark.parametrize("name", list(CASES))
+def test_two_rank_runs_verify_against_the_published_spectra(stores, name):
+    verify = dict(stores[name, "slepc-2"]["verify"].attrs)
+    assert verify["passed"]
+    names = {check["name"] for check in verify["checks"]}
+    assert "spectrum.slowest_set" in names and "stationary.exact" in names
+    spectrum = dict(stores[name, "slepc-2"]["spectrum"].attrs)
+    assert spectrum["certified"] is True
+
+
+@pytest.mark.parametrize("name", list(CASES))
+def test_ranks_write_whole_chunks_they_own(stores, name):
+    group = stores[name, "slepc-2"]
+    n = int(group["assemble"].attrs["n_states"])
+    chunk = state_chunk(n, 2)
+    distribution = group["stationary/distribution"]
+    assert distribution.chunks == (chunk,)
+    for start, stop in ownership_ranges(n, 2):  # each rank's rows are whole chunks
+        assert start % chunk == 0 and (stop % chunk == 0 or stop == n)
+    assert chunk % group["spectrum/vectors"].chunks[0] == 0
+    assert group["assemble"].attrs["ownership_ranges"] == [list(r) for r in
+                                                           ownership_ranges(n, 2)]
+
+
+def test_provenance_records_ranks_method_and_memory(stores):
+    group = stores["torus", "slepc-2"]
+    spectrum = dict(group["spectrum"].attrs)
+    assert spectrum["backend"] == "slepc" and spectrum["ranks"] == 2
+    assert spectrum["inner_solver"] == "direct" and spectrum["pc_type"] == "lu"
+    assert spectrum["iterations"] >= 1 and spectrum["rounds"]
+    assert len(spectrum["peak_memory_mib_per_rank"]) == 2
+    run_attrs = dict(stores["torus", "slepc-2"].attrs)
+    record = run_attrs["stages"]["solve"]
+    assert record["ranks"] == 2 and len(record["peak_memory_mib_per_rank"]) == 2
+    assert set(run_attrs["timings"]) >= {"assemble", "solve", "verify", "report"}
+
+
+def test_an_error_in_one_ranks_rows_stops_every_rank(tmp_path):
+    """A broken rate in the last rows (owned by rank 1) must end both ranks with the same
+    one-line error, not leave rank 0 waiting in a collective."""
+    launcher = [MPIEXEC, "-n", "2", "--oversubscribe"]
+    if os.geteuid() == 0:
+        launcher.append("--allow-run-as-root")
+    script = REPO / "tests" / "mpi_broken_rows.py"
+    env = dict(os.environ, GAPLINE_PROGRESS="off", PYTHONPATH=str(REPO))
+    outcome = subprocess.run(launcher + [sys.executable, str(script)], capture_output=True,
+                             text=True, env=env, timeout=120)
+    lines = [line for line in outcome.stdout.splitlines() if line.startswith("rank")]
+    assert sorted(line.split(":")[0] for line in lines) == ["rank 0", "rank 1"], outcome
+    messages = {line.split(":", 1)[1] for line in lines}
+    assert len(messages) == 1 and "no error" not in messages.pop(), lines
+
+
+def test_a_bad_config_under_mpiexec_is_one_line(tmp_path):
+    config = write_config(tmp_path, "bad", '[run]\nname = "bad"\n[model]\ntype = "lattice"\n'
+                          'size = 10\n[solve]\nbackend = "slepc"\ninner = "gmres"\n')
+    outcome = _run(config, tmp_path / "s.zarr", 2)
+    assert outcome.returncode == 2
+    # One line from gapline (rank 0 speaks for all); the rest is mpiexec's own abort notice.
+    errors = [line for line in outcome.stderr.splitlines() if line.startswith("gapline")]
+    assert len(errors) == 1 and errors[0].startswith("gapline: error: solve.inner"), errors
+    assert "Traceback" not in outcome.stderr
