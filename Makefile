@@ -22,6 +22,8 @@ test: lint
 
 bench: venv
 	$(BIN)/python benchmarks/assemble.py
+	$(BIN)/python benchmarks/spmv.py
+	$(BIN)/python benchmarks/driven_torus.py
 
 clean:
 	rm -rf demo-store.zarr .pytest_cache build *.egg-info

@@ -8,12 +8,18 @@ Layout (README.md, "Store layout", reproduces this)::
                                           model    model summary (shape, rates, ...)
                                           versions software versions
                                           timings  seconds per stage
-                                          stages   {stage: {fingerprint, groups, finished}}
-        assemble/                       attrs: n_states, nnz, norm1, column_sum_defect, ...
+                                          stages   {stage: {fingerprint, groups, finished,
+                                                   ranks, peak_memory_mib_per_rank}}
+        assemble/                       attrs: n_states, nnz, norm1, column_sum_defect, ...,
+                                          ranks, ownership_ranges (slepc)
         spectrum/eigenvalues            complex128 [mode]   slowest first; attrs: backend,
-                                          method, certified, certificate, group_complete
+                                          method, certified, certificate, group_complete;
+                                          slepc: ranks, rounds (nev, ncv, restarts, inner
+                                          solves), inner_solver, ksp_type, pc_type,
+                                          peak_memory_mib_per_rank, petsc_options
         spectrum/residuals              float64    [mode]   ||W v - l v|| / ||W||_1
         spectrum/condition              float64    [mode]   eigenvalue condition numbers
+                                          (slepc: of the balanced D^-1 W D, D = sqrt(p))
         spectrum/error_estimates        float64    [mode]   condition x residual x ||W||_1
         spectrum/vectors                complex128 [state, mode]   (solve.vectors = true)
         stationary/distribution         float64    [state]  (conserving generators); attrs:
@@ -31,6 +37,10 @@ only then records its fingerprint in the run's ``stages`` attribute. A group cou
 result only when ``complete`` is set *and* its fingerprint equals the recorded one, so an
 interrupted stage never looks complete, and an earlier complete result stays readable until
 the new one is committed.
+
+Under MPI rank 0 creates the groups and arrays and commits; each rank writes the chunks of
+the state rows it owns (ownership ranges are runs of whole chunks, ``pipeline.parallel``), so
+no two ranks ever write into one chunk.
 """
 
 from __future__ import annotations

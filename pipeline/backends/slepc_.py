@@ -421,7 +421,7 @@ class SlepcBackend(Backend):
         eps_seconds = 0.0
         while True:
             nev = max(1, min(nev, cap))
-            ncv = min(n - 1, max(2 * nev + 8, nev + 24, 48))
+            ncv = min(n - 1, max(4 * nev, 64))
             log(f"solve: Krylov–Schur on the shifted inverse about {solver['shift']:.2e}, "
                 f"{nev} modes by real part (subspace {ncv})")
             result = self._eigensolve(operator, nev, ncv, tolerance, initial, stationary)
