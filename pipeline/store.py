@@ -9,7 +9,12 @@ Layout (README.md, "Store layout", reproduces this)::
                                           versions software versions
                                           timings  seconds per stage
                                           stages   {stage: {fingerprint, groups, finished}}
+                                          sweep    sweep tasks only: {name, index, parameters,
+                                                   status (running|complete|failed), error}
         assemble/                       attrs: n_states, nnz, norm1, column_sum_defect, ...
+        matrix/indptr                   int64   [row_pointer]  W in CSR (store.matrix = true):
+        matrix/indices                  int32/64 [entry]       row i holds entries
+        matrix/data                     float64 [entry]        indptr[i]:indptr[i+1]
         spectrum/eigenvalues            complex128 [mode]   slowest first; attrs: backend,
                                           method, certified, certificate, group_complete
         spectrum/residuals              float64    [mode]   ||W v - l v|| / ||W||_1
@@ -21,6 +26,12 @@ Layout (README.md, "Store layout", reproduces this)::
         verify/                         attrs: passed (bool), checks (list of {name, source,
                                           value, reference, tolerance, passed})
         report/                         attrs: summary (text)
+      _sweeps/SWEEP/                    attrs: definition, parameters, tasks [{index, run,
+                                          parameters}] (written by the sweep driver only)
+        collected/                      'gapline collect': xarray dataset [task, mode] of
+                                          eigenvalues, gap, relaxation_time, status, ...;
+                                          attrs gap_fit, gap_fit_corrected (z, z_stderr,
+                                          fit_range); see pipeline/collect.py
       _staging/                         stage outputs being written (never read)
 
 Every output group also carries attrs ``stage``, ``fingerprint`` and ``complete`` (True).
@@ -63,7 +74,7 @@ __all__ = [
 LAYOUT_VERSION = 1
 #: stage -> the groups it writes under RUN/
 STAGE_GROUPS: dict[str, tuple[str, ...]] = {
-    "assemble": ("assemble",),
+    "assemble": ("assemble", "matrix"),
     "solve": ("spectrum", "stationary"),
     "verify": ("verify",),
     "report": ("report",),
@@ -72,7 +83,9 @@ STAGING = "_staging"
 #: what a run name may be: one directory under STORE/, never the root metadata file
 RUN_NAME = re.compile(r"[A-Za-z0-9][A-Za-z0-9_.\-]*")
 RESERVED_NAMES = ("zarr.json",)
-STATE_CHUNK = 1 << 20  # states per chunk along the state axis
+STATE_CHUNK = 1 << 20  # states (or matrix entries) per chunk along a long axis
+#: dimensions chunked by STATE_CHUNK (every other axis is one chunk)
+LONG_DIMS = ("state", "entry", "row_pointer")
 
 
 @dataclass
@@ -112,6 +125,10 @@ class Store:
             self.root = self._open_root(mode="a")
             if "gapline_store" not in self.root.attrs:
                 self.root.attrs["gapline_store"] = LAYOUT_VERSION
+            if not (self.path / STAGING / "zarr.json").exists():
+                # Made here, once, by whoever creates the store (a sweep driver before its
+                # tasks start), so parallel stage commits never race to create it.
+                _zarr().open_group(str(self.path / STAGING), mode="a", zarr_format=3)
         else:
             if not (self.path / "zarr.json").exists():
                 raise StoreError(f"store {str(self.path)!r}: not found; fix: check the path or "
@@ -180,7 +197,8 @@ class Store:
         staging_dir = self.path / STAGING / staging_name
         zarr = _zarr()
         # _staging is itself a (never read) group, so listing the root stays clean.
-        zarr.open_group(str(self.path / STAGING), mode="a", zarr_format=3)
+        if not (self.path / STAGING / "zarr.json").exists():
+            zarr.open_group(str(self.path / STAGING), mode="a", zarr_format=3)
         staging = zarr.open_group(str(staging_dir), mode="w", zarr_format=3)
         for name, content in groups.items():
             group = staging.create_group(name)
@@ -272,7 +290,7 @@ def _is_stale(stages: dict[str, Any], record: dict[str, Any]) -> bool:
 def _write_array(group: Any, name: str, spec: ArraySpec) -> None:
     data = np.asarray(spec.data)
     chunks = tuple(
-        min(max(size, 1), STATE_CHUNK if dim == "state" else max(size, 1))
+        min(max(size, 1), STATE_CHUNK if dim in LONG_DIMS else max(size, 1))
         for size, dim in zip(data.shape, spec.dims, strict=True)
     )
     if data.ndim == 2 and spec.dims[0] == "state":

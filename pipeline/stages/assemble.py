@@ -2,12 +2,14 @@
 
 from __future__ import annotations
 
+import numpy as np
+
 from pipeline.progress import log, warn
 from pipeline.stages.base import RunContext, StageOutput
-from pipeline.store import GroupData
+from pipeline.store import ArraySpec, GroupData
 
 NAME = "assemble"
-CONFIG_SECTIONS = ("model",)
+CONFIG_SECTIONS = ("model", "store.matrix")
 UPSTREAM: str | None = None
 
 
@@ -36,4 +38,32 @@ def run(ctx: RunContext) -> StageOutput:
         "warnings": model.warnings(),
         **operator.info,
     }
-    return StageOutput({"assemble": GroupData(attrs=attrs)}, record={"seconds": operator.seconds})
+    groups = {"assemble": GroupData(attrs=attrs)}
+    if ctx.config.store.matrix:
+        groups["matrix"] = matrix_group(operator)
+    return StageOutput(groups, record={"seconds": operator.seconds})
+
+
+def matrix_group(operator) -> GroupData:
+    """The generator as CSR arrays (the backend's own when it holds a scipy matrix, else
+    rebuilt from the model's row blocks); read back by :class:`StoredGenerator`."""
+    import scipy.sparse as sp
+
+    handle = operator.handle if isinstance(operator.handle, dict) else {}
+    W = handle.get("W")
+    if not (sp.issparse(W) and W.format == "csr"):
+        from pipeline.models.stored import csr_from_model
+
+        indptr, indices, data = csr_from_model(operator.model)
+    else:
+        indptr, indices, data = W.indptr, W.indices, W.data
+    return GroupData(
+        arrays={
+            "indptr": ArraySpec(np.asarray(indptr, dtype=np.int64), ("row_pointer",)),
+            "indices": ArraySpec(indices, ("entry",)),
+            "data": ArraySpec(np.asarray(data, dtype=np.float64), ("entry",)),
+        },
+        attrs={"format": "csr", "n_states": operator.n_states, "nnz": operator.nnz,
+               "conserving": operator.check.conserving,
+               "convention": "W[i, j] = rate j -> i; row i = entries indptr[i]:indptr[i+1]"},
+    )
