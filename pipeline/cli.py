@@ -232,6 +232,12 @@ def _check(args: argparse.Namespace) -> int:
         print(f"  {key:<22} {value}")
     for note in model.warnings():
         print(f"  warning: {note}")
+    if config.sweep is not None:
+        from pipeline.sweep import expand_sweep
+
+        tasks = expand_sweep(config)  # validates every task's config
+        print(f"  sweep {config.sweep.name}: {len(tasks)} tasks, runs {tasks[0].run} .. "
+              f"{tasks[-1].run} (the estimate above is for the base config)")
     return EXIT_OK
 
 

@@ -156,3 +156,25 @@ def test_sweep_on_real_slurm(slurm, tmp_path):
     assert abs(fit["z"] - 2) <= 3 * fit["z_stderr"] and fit["z_stderr"] < 1e-3
     logs = sorted(tmp_path.glob("s.zarr.jobs/slurmsweep/slurmsweep-tasks-*.out"))
     assert len(logs) == len(SIZES)
+
+
+@pytest.mark.slow
+def test_dask_jobqueue_sweep_on_real_slurm(slurm, tmp_path):
+    # [cluster] scheduler = "slurm": the dask workers are SLURM jobs (dask-jobqueue).
+    sizes = SIZES[:3]
+    path = sweep_config(tmp_path, sweep="jqsweep", lines=f'grid = {{ "model.size" = {sizes} }}',
+                        workers=1)
+    path.write_text(path.read_text().replace("workers = 1", 'workers = 1\nscheduler = "slurm"\n'
+                                             'walltime = "00:10:00"\nmemory = 2.0'))
+    result = run_cli("sweep", path, "--store", "s.zarr", cwd=tmp_path, env_extra=slurm.env,
+                     timeout=300)
+    assert result.returncode == 0, result.stdout + result.stderr
+    assert f"{len(sizes)} to run on slurm" in result.stdout
+    ds_result = run_cli("collect", tmp_path / "s.zarr", "jqsweep", cwd=tmp_path)
+    assert ds_result.returncode == 0, ds_result.stderr
+    ds = xr.open_zarr(str(tmp_path / "s.zarr"), group="_sweeps/jqsweep/collected",
+                      consolidated=False)
+    np.testing.assert_allclose(ds["gap"].values, ring_gap(sizes), rtol=1e-9)
+    worker_logs = list((tmp_path / "s.zarr.jobs" / "jqsweep").glob("*.err")) + list(
+        (tmp_path / "s.zarr.jobs" / "jqsweep").glob("*.out"))
+    assert worker_logs, "no SLURM job ran the dask worker"
