@@ -127,6 +127,11 @@ def _run(args: argparse.Namespace) -> int:
     from pipeline.stages.runner import run_pipeline
 
     config = load_config(args.config, args.overrides)
+    if config.sweep is not None:
+        from pipeline.progress import log
+
+        log(f"note: the config has a [sweep]; 'gapline run' runs the base config only (run "
+            f"{config.run.name!r}); 'gapline sweep {args.config}' runs the sweep")
     outcome = run_pipeline(config, store_path=args.store, start=args.start, only=args.only)
     if outcome.verified is False:
         print(f"gapline: verification FAILED for run {outcome.run!r} (see the checks above)",
@@ -165,7 +170,7 @@ def _sweep(args: argparse.Namespace) -> int:
             text += " (verification FAILED)"
         print(f"  task {result.index:3d} {result.run}: {text}", flush=True)
 
-    results = run_tasks(missing, str(store.path), settings, on_result=show,
+    results = run_tasks(missing, str(store.path.resolve()), settings, on_result=show,
                         log_directory=Path(str(store.path) + ".jobs") / config.sweep.name)
     failed = [r for r in results if r.status == "failed"]
     unverified = [r for r in results if r.verified is False]

@@ -58,7 +58,8 @@ def test_slurm_sweep_scripts(tmp_path):
 
 def test_pbs_sweep_scripts(tmp_path):
     config = load_config(sweep_config(tmp_path))
-    array, collect = render_jobs(config, sweep_config(tmp_path), "pbs").scripts
+    array, collect = render_jobs(config, sweep_config(tmp_path), "pbs",
+                                   jobs_dir=tmp_path / "jobs").scripts
     directives = _directives(array.text, "#PBS")
     assert f"-J 0-{len(SIZES) - 1}" in directives
     assert '--index "$PBS_ARRAY_INDEX"' in array.text
@@ -70,7 +71,7 @@ def test_mpi_job_takes_ranks_and_memory_from_the_estimate(tmp_path):
 
     path = write_config(tmp_path, "big", BIG.format(backend="slepc"))
     config = load_config(path)
-    (job,) = render_jobs(config, path, "slurm").scripts
+    (job,) = render_jobs(config, path, "slurm", jobs_dir=tmp_path / "jobs").scripts
     numbers = resource_numbers(build_model(config.model), config)
     # 2000 x 2000 torus: CSR of 2e7 nonzeros plus an Arnoldi basis of up to 801 vectors.
     ranks = int(np.ceil(numbers["total_bytes"] * 1.5 / 2**30 / 2.0))
@@ -81,16 +82,16 @@ def test_mpi_job_takes_ranks_and_memory_from_the_estimate(tmp_path):
     memory = int(next(d for d in directives if d.startswith("--mem=")).removeprefix("--mem=")
                  .removesuffix("G"))
     assert memory >= numbers["total_bytes"] * 1.5 / 2**30  # the whole estimate is requested
-    (pbs_job,) = render_jobs(config, path, "pbs").scripts
+    (pbs_job,) = render_jobs(config, path, "pbs", jobs_dir=tmp_path / "jobs").scripts
     assert f"-l select={ranks}:ncpus=1:mpiprocs=1:mem=" in pbs_job.text
 
 
 def test_one_process_backend_cannot_take_ranks(tmp_path):
     path = write_config(tmp_path, "big", BIG.format(backend="scipy") + "ranks = 4\n")
     with pytest.raises(GaplineError, match="cluster.ranks: 4 ranks need solve.backend"):
-        render_jobs(load_config(path), path, "slurm")
+        render_jobs(load_config(path), path, "slurm", jobs_dir=tmp_path / "jobs")
     (job,) = render_jobs(load_config(write_config(tmp_path, "one", BIG.format(
-        backend="scipy"))), tmp_path / "one.toml", "slurm").scripts
+        backend="scipy"))), tmp_path / "one.toml", "slurm", jobs_dir=tmp_path / "jobs").scripts
     assert "--ntasks=1" in job.text and "mpiexec" not in job.text
 
 
