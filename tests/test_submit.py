@@ -179,3 +179,36 @@ def test_dask_jobqueue_sweep_on_real_slurm(slurm, tmp_path):
     worker_logs = list((tmp_path / "s.zarr.jobs" / "jqsweep").glob("*.err")) + list(
         (tmp_path / "s.zarr.jobs" / "jqsweep").glob("*.out"))
     assert worker_logs, "no SLURM job ran the dask worker"
+
+
+def test_jobqueue_pbs_job_script(tmp_path):
+    from pipeline.cluster import jobqueue_cluster
+
+    path = sweep_config(tmp_path)
+    path.write_text(path.read_text().replace("workers = 2", 'workers = 1\nscheduler = "pbs"\n'
+                                             'cores = 4\naccount = "proj7"'))
+    cluster = jobqueue_cluster(load_config(path).cluster)
+    try:
+        script = cluster.job_script()
+    finally:
+        cluster.close()
+    directives = _directives(script, "#PBS")
+    assert any(d.startswith("-l select=1:ncpus=4") for d in directives)
+    assert "-A proj7" in directives
+    assert "export OMP_NUM_THREADS=4" in script
+
+
+def test_sweep_task_index_out_of_range(tmp_path):
+    from .conftest import assert_one_line_user_error
+
+    path = sweep_config(tmp_path)
+    result = run_cli("sweep-task", path, "--index", "5", "--store", "s.zarr", cwd=tmp_path)
+    line = assert_one_line_user_error(result)
+    assert f"tasks 0..{len(SIZES) - 1}, got 5" in line
+
+
+def test_check_lists_the_sweep(tmp_path):
+    result = run_cli("check", sweep_config(tmp_path), cwd=tmp_path)
+    assert result.returncode == 0, result.stderr
+    assert (f"sweep ringsweep: {len(SIZES)} tasks, runs ringsweep.size-32 .. "
+            "ringsweep.size-512") in result.stdout
