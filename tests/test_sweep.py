@@ -255,7 +255,8 @@ def test_killed_sweep_resumes_only_missing_tasks(tmp_path):
     "exclusion" not in __import__("pipeline.models", fromlist=["MODEL_TYPES"]).MODEL_TYPES,
     reason="needs the exclusion model (being written on another branch): the TASEP gap "
            "exponent z -> 3/2 (Gwa and Spohn 1992, Phys. Rev. A 46, 844) is checked once a "
-           "config for it can be written here",
+           "config for it can be written here (the fit itself is checked on a hand-built TASEP "
+           "in tests/test_fit.py)",
 )
 def test_tasep_ring_half_filling_gap_exponent_tends_to_three_halves():
     pytest.skip("not written yet: the exclusion model's config fields were not known on this "
