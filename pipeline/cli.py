@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import argparse
 import sys
+from pathlib import Path
 
 from pipeline.errors import GaplineError
 
@@ -46,6 +47,44 @@ def _parser() -> argparse.ArgumentParser:
     show.add_argument("run", nargs="?")
 
     commands.add_parser("schema", help="print the config reference (Markdown)")
+
+    sweep = commands.add_parser("sweep", help="run every task of the config's [sweep] on dask")
+    sweep.add_argument("config")
+    sweep.add_argument("--store", help="zarr store directory (default: store.path)")
+    sweep.add_argument("--set", dest="overrides", action="append", default=[],
+                       metavar="KEY=VALUE")
+    sweep.add_argument("--scheduler", choices=("local", "slurm", "pbs"),
+                       help="override cluster.scheduler")
+    sweep.add_argument("--workers", type=int, help="override cluster.workers")
+
+    task = commands.add_parser("sweep-task", help="run one task of a sweep (batch job arrays)")
+    task.add_argument("config")
+    task.add_argument("--index", type=int, required=True, help="task index, from 0")
+    task.add_argument("--store", help="zarr store directory (default: store.path)")
+    task.add_argument("--set", dest="overrides", action="append", default=[],
+                      metavar="KEY=VALUE")
+
+    collect = commands.add_parser("collect", help="one dataset of a sweep's results, with the "
+                                  "power-law fit of the gap against size")
+    collect.add_argument("store")
+    collect.add_argument("sweep")
+
+    submit = commands.add_parser("submit", help="batch scripts for a run or a sweep; submit "
+                                 "them (or --dry-run: only write and print them)")
+    submit.add_argument("config")
+    submit.add_argument("--scheduler", choices=("slurm", "pbs"), required=True)
+    submit.add_argument("--store", help="zarr store directory (default: store.path)")
+    submit.add_argument("--set", dest="overrides", action="append", default=[],
+                        metavar="KEY=VALUE")
+    submit.add_argument("--dry-run", action="store_true", help="write the scripts, submit nothing")
+    submit.add_argument("--jobs-dir", help="where scripts and job logs go (default: "
+                        "STORE.jobs/NAME)")
+
+    report = commands.add_parser("report", help="figures (PNG) and one HTML page for a run "
+                                 "or a collected sweep")
+    report.add_argument("store")
+    report.add_argument("name", nargs="?", help="a run or a sweep (default: every run)")
+    report.add_argument("--out", help="output folder (default: STORE.report/NAME)")
     return parser
 
 
@@ -58,6 +97,8 @@ def main(argv: list[str] | None = None) -> int:
             return _check(args)
         if args.command == "show":
             return _show(args)
+        if args.command in _COMMANDS:
+            return _COMMANDS[args.command](args)
         if args.command == "schema":
             from pipeline.config import describe_schema
 
@@ -91,10 +132,99 @@ def _run(args: argparse.Namespace) -> int:
     from pipeline.stages.runner import run_pipeline
 
     config = load_config(args.config, args.overrides)
+    if config.sweep is not None:
+        from pipeline.progress import log
+
+        log(f"note: the config has a [sweep]; 'gapline run' runs the base config only (run "
+            f"{config.run.name!r}); 'gapline sweep {args.config}' runs the sweep")
     outcome = run_pipeline(config, store_path=args.store, start=args.start, only=args.only)
     if outcome.verified is False:
         _say(f"gapline: verification FAILED for run {outcome.run!r} (see the checks above)")
         return EXIT_VERIFY_FAILED
+    return EXIT_OK
+
+
+def _sweep(args: argparse.Namespace) -> int:
+    import dataclasses
+
+    from pipeline.cluster import run_tasks
+    from pipeline.config import load_config
+    from pipeline.store import Store
+    from pipeline.sweep import record_sweep, sweep_tasks, task_is_complete
+
+    config = load_config(args.config, args.overrides)
+    settings = config.cluster
+    if args.scheduler:
+        settings = dataclasses.replace(settings, scheduler=args.scheduler)
+    if args.workers is not None:
+        if args.workers < 1:
+            raise GaplineError(f"--workers: must be >= 1, got {args.workers}")
+        settings = dataclasses.replace(settings, workers=args.workers)
+    store = Store(args.store or config.store.path, create=True)
+    tasks = sweep_tasks(config, store)
+    record_sweep(store, config, tasks)
+    missing = [task for task in tasks if not task_is_complete(store, task)]
+    print(f"sweep {config.sweep.name}: {len(tasks)} tasks, {len(tasks) - len(missing)} up to "
+          f"date, {len(missing)} to run on {settings.scheduler} ({settings.workers} workers)",
+          flush=True)
+
+    def show(result) -> None:
+        text = result.status if result.error is None else f"failed: {result.error}"
+        if result.verified is False:
+            text += " (verification FAILED)"
+        print(f"  task {result.index:3d} {result.run}: {text}", flush=True)
+
+    results = run_tasks(missing, str(store.path.resolve()), settings, on_result=show,
+                        log_directory=Path(str(store.path) + ".jobs") / config.sweep.name)
+    failed = [r for r in results if r.status == "failed"]
+    unverified = [r for r in results if r.verified is False]
+    print(f"sweep {config.sweep.name}: {len(results) - len(failed)} of {len(missing)} run, "
+          f"{len(failed)} failed; collect with 'gapline collect {store.path} "
+          f"{config.sweep.name}'", flush=True)
+    return EXIT_VERIFY_FAILED if failed or unverified else EXIT_OK
+
+
+def _sweep_task(args: argparse.Namespace) -> int:
+    from pipeline.config import load_config
+    from pipeline.store import Store
+    from pipeline.sweep import run_task, sweep_tasks
+
+    config = load_config(args.config, args.overrides)
+    store = Store(args.store or config.store.path, create=True)
+    tasks = sweep_tasks(config, store)
+    if not 0 <= args.index < len(tasks):
+        raise GaplineError(f"--index: the sweep has tasks 0..{len(tasks) - 1}, got {args.index}")
+    result = run_task(tasks[args.index], str(store.path))
+    print(f"task {result.index} {result.run}: {result.status}"
+          + (f": {result.error}" if result.error else ""), flush=True)
+    return EXIT_OK if result.status != "failed" and result.verified is not False else \
+        EXIT_VERIFY_FAILED
+
+
+def _collect(args: argparse.Namespace) -> int:
+    from pipeline.collect import collect_sweep, describe_collection
+
+    collection = collect_sweep(args.store, args.sweep)
+    print(describe_collection(collection))
+    return EXIT_OK
+
+
+def _submit(args: argparse.Namespace) -> int:
+    from pipeline.config import load_config
+    from pipeline.submit import submit
+
+    config = load_config(args.config, args.overrides)
+    plan = submit(config, args.config, args.scheduler, store=args.store,
+                  jobs_dir=args.jobs_dir, dry_run=args.dry_run, overrides=args.overrides)
+    print(plan.describe())
+    return EXIT_OK
+
+
+def _report(args: argparse.Namespace) -> int:
+    from pipeline.figures import write_report
+
+    page = write_report(args.store, args.name, out=args.out)
+    print(f"report: {page}")
     return EXIT_OK
 
 
@@ -111,6 +241,12 @@ def _check(args: argparse.Namespace) -> int:
         print(f"  {key:<22} {value}")
     for note in model.warnings():
         print(f"  warning: {note}")
+    if config.sweep is not None:
+        from pipeline.sweep import expand_sweep
+
+        tasks = expand_sweep(config)  # validates every task's config
+        print(f"  sweep {config.sweep.name}: {len(tasks)} tasks, runs {tasks[0].run} .. "
+              f"{tasks[-1].run} (the estimate above is for the base config)")
     return EXIT_OK
 
 
@@ -158,3 +294,7 @@ def _run_row(store, run: str) -> str:
         verdict = {"missing": "-", "stale": "stale"}.get(status, "partial")
     return (f"{run:<24} {model[:32]:<32} {states!s:>10} {backend:<8} {certified:<9} "
             f"{gap_text:>18} {verdict:<7}")
+
+
+_COMMANDS = {"sweep": _sweep, "sweep-task": _sweep_task, "collect": _collect, "submit": _submit,
+             "report": _report}

@@ -32,7 +32,10 @@ __all__ = [
     "SolveConfig",
     "StoreConfig",
     "VerifyConfig",
+    "ClusterConfig",
+    "SweepConfig",
     "apply_override",
+    "set_field",
     "describe_schema",
     "fingerprint",
     "load_config",
@@ -145,8 +148,52 @@ SCHEMA: dict[str, dict[str, tuple[str, Any, str]]] = {
     },
     "store": {
         "path": ("string", "gapline-store.zarr", "zarr store (a directory); --store overrides"),
+        "matrix": (
+            "bool",
+            False,
+            "also store the assembled generator (row-chunked CSR under RUN/matrix), so solve "
+            "can rerun without assemble, each process reading only its rows",
+        ),
+    },
+    "sweep": {
+        "name": ("string", None, "sweep name, the prefix of its run names; default: run.name"),
+        "grid": (
+            "table",
+            None,
+            "field path -> list of values, e.g. {\"model.size\" = [32, 64]} or "
+            "{\"model.forward[0]\" = [0.5, 1.0]}; every combination is one task",
+        ),
+        "zip": (
+            "table",
+            None,
+            "field path -> list of values, all of one length; the i-th values go together "
+            "(the zipped rows are combined with the grid as a product)",
+        ),
+    },
+    "cluster": {
+        "scheduler": (
+            "string",
+            "local",
+            "where 'gapline sweep' runs its tasks: 'local' (a dask LocalCluster on this "
+            "machine), 'slurm' or 'pbs' (dask-jobqueue: one dask worker per batch job)",
+        ),
+        "workers": ("int", 2, "dask workers (local processes, or batch jobs) (>= 1)"),
+        "cores": ("int", 1, "cores per worker or batch job (>= 1)"),
+        "memory": ("float", 4.0, "memory per worker or batch job, GiB (> 0)"),
+        "walltime": ("string", "01:00:00", "time limit per batch job, HH:MM:SS"),
+        "queue": ("string", None, "batch queue / partition (default: the scheduler's)"),
+        "account": ("string", None, "batch account to charge (default: none)"),
+        "ranks": (
+            "int",
+            0,
+            "MPI ranks of 'gapline submit' for one run; 0: from the 'check' memory estimate "
+            "and cluster.memory",
+        ),
     },
 }
+
+SCHEDULERS = ("local", "slurm", "pbs")
+WALLTIME = re.compile(r"^(\d+):([0-5]\d):([0-5]\d)$")
 
 
 @dataclass(frozen=True)
@@ -201,6 +248,28 @@ class VerifyConfig:
 @dataclass(frozen=True)
 class StoreConfig:
     path: str = "gapline-store.zarr"
+    matrix: bool = False
+
+
+@dataclass(frozen=True)
+class SweepConfig:
+    """A parameter sweep: ``grid`` (product) and ``zip`` (lockstep) as (field path, values)."""
+
+    name: str
+    grid: tuple[tuple[str, tuple[Any, ...]], ...] = ()
+    zip: tuple[tuple[str, tuple[Any, ...]], ...] = ()
+
+
+@dataclass(frozen=True)
+class ClusterConfig:
+    scheduler: str = "local"
+    workers: int = 2
+    cores: int = 1
+    memory: float = 4.0  # GiB
+    walltime: str = "01:00:00"
+    queue: str | None = None
+    account: str | None = None
+    ranks: int = 0
 
 
 @dataclass(frozen=True)
@@ -212,6 +281,8 @@ class Config:
     solve: SolveConfig
     verify: VerifyConfig
     store: StoreConfig
+    sweep: SweepConfig | None = None
+    cluster: ClusterConfig = field(default_factory=ClusterConfig)
     source: str | None = None
     raw: dict[str, Any] = field(default_factory=dict, compare=False, repr=False)
 
@@ -271,15 +342,25 @@ def apply_override(raw: dict[str, Any], item: str) -> None:
         raise ConfigError(f"--set {key!r}: expected SECTION.FIELD, e.g. model.size")
     if not isinstance(value, str) and _declared_kind(parts) == "string":
         value = text.strip()  # run.name=2024-06-01 is a name, not a TOML date
+    set_field(raw, key, value, label=f"--set {key!r}")
+
+
+def set_field(raw: dict[str, Any], key: str, value: Any, label: str | None = None) -> None:
+    """Set the field at dotted path ``key`` (``model.size``, ``model.forward[1]``) of a raw
+    table tree to ``value``; ``label`` starts error messages (default: the key)."""
+    label = label or repr(key)
+    parts = key.split(".")
+    if len(parts) < 2:
+        raise ConfigError(f"{label}: expected SECTION.FIELD, e.g. model.size")
     node: Any = raw
     for depth, part in enumerate(parts):
         match = _KEY_PART.match(part)
         if not match:
-            raise ConfigError(f"--set {key!r}: {part!r} is not a field name")
+            raise ConfigError(f"{label}: {part!r} is not a field name")
         name, index = match.group(1), match.group(2)
         last = depth == len(parts) - 1
         if not isinstance(node, dict):
-            raise ConfigError(f"--set {key!r}: {'.'.join(parts[:depth])} is not a table")
+            raise ConfigError(f"{label}: {'.'.join(parts[:depth])} is not a table")
         if index is None:
             if last:
                 node[name] = value
@@ -288,11 +369,11 @@ def apply_override(raw: dict[str, Any], item: str) -> None:
             continue
         current = node.get(name)
         if not isinstance(current, list):
-            raise ConfigError(f"--set {key!r}: {name} is not a list in the config; set it whole")
+            raise ConfigError(f"{label}: {name} is not a list in the config; set it whole")
         position = int(index)
         if position >= len(current):
             raise ConfigError(
-                f"--set {key!r}: index {position} out of range ({name} has {len(current)})"
+                f"{label}: index {position} out of range ({name} has {len(current)})"
             )
         if last:
             current[position] = value
@@ -324,7 +405,7 @@ def fingerprint(data: Any) -> str:
 def parse_config(raw: dict[str, Any], source: str | None = None) -> Config:
     """Validate a table tree (as read from TOML) into a :class:`Config`."""
     raw = copy.deepcopy(raw)
-    _reject_unknown(raw, ("run", "model", "solve", "verify", "store"), "")
+    _reject_unknown(raw, ("run", "model", "solve", "verify", "store", "sweep", "cluster"), "")
     run_table = _table(raw, "run")
     _reject_unknown(run_table, SCHEMA["run"], "run")
     name = run_table.get("name")
@@ -345,9 +426,81 @@ def parse_config(raw: dict[str, Any], source: str | None = None) -> Config:
     verify = _parse_verify(_table(raw, "verify"))
     store_table = _table(raw, "store")
     _reject_unknown(store_table, SCHEMA["store"], "store")
-    store = StoreConfig(path=_string(store_table.get("path", StoreConfig.path), "store.path"))
-    return Config(run=run, model=model, solve=solve, verify=verify, store=store, source=source,
-                  raw=raw)
+    store = StoreConfig(path=_string(store_table.get("path", StoreConfig.path), "store.path"),
+                        matrix=_boolean(store_table.get("matrix", StoreConfig.matrix),
+                                        "store.matrix"))
+    sweep = _parse_sweep(raw["sweep"], name) if "sweep" in raw else None
+    cluster = _parse_cluster(_table(raw, "cluster"))
+    return Config(run=run, model=model, solve=solve, verify=verify, store=store, sweep=sweep,
+                  cluster=cluster, source=source, raw=raw)
+
+
+def _parse_sweep(table: Any, run_name: str) -> SweepConfig:
+    """The ``[sweep]`` table; the fields and values themselves are checked on expansion."""
+    if not isinstance(table, dict):
+        raise ConfigError("sweep: expected a table [sweep] with grid = {...} and/or zip = {...}")
+    _reject_unknown(table, SCHEMA["sweep"], "sweep")
+    name = _string(table.get("name", run_name), "sweep.name")
+    from pipeline.store import run_name_problem
+
+    problem = run_name_problem(name)
+    if problem is not None:
+        raise ConfigError(f"sweep.name: {name!r} {problem}")
+    parts = {}
+    for kind in ("grid", "zip"):
+        entries = table.get(kind, {})
+        if not isinstance(entries, dict):
+            raise ConfigError(f"sweep.{kind}: expected a table of field path -> list of values, "
+                              f"e.g. {kind} = {{\"model.size\" = [32, 64]}}")
+        items = []
+        for key, values in entries.items():
+            if not isinstance(values, list) or not values:
+                raise ConfigError(f"sweep.{kind}.{key!r}: expected a non-empty list of values, "
+                                  f"got {values!r}")
+            if key.split(".")[0] in ("sweep", "cluster", "store", "run"):
+                raise ConfigError(f"sweep.{kind}.{key!r}: only model, solve and verify fields "
+                                  "can be swept")
+            items.append((key, tuple(values)))
+        parts[kind] = tuple(items)
+    lengths = {len(values) for _, values in parts["zip"]}
+    if len(lengths) > 1:
+        raise ConfigError("sweep.zip: every list must have the same length, got lengths "
+                          + ", ".join(str(len(v)) for _, v in parts["zip"]))
+    keys = [key for key, _ in parts["grid"] + parts["zip"]]
+    if not keys:
+        raise ConfigError("sweep: no fields to sweep; fix: add grid = {\"model.size\" = [...]}")
+    duplicated = {key for key in keys if keys.count(key) > 1}
+    if duplicated:
+        raise ConfigError(f"sweep: field {sorted(duplicated)[0]!r} is in both grid and zip")
+    return SweepConfig(name=name, grid=parts["grid"], zip=parts["zip"])
+
+
+def _parse_cluster(table: dict[str, Any]) -> ClusterConfig:
+    _reject_unknown(table, SCHEMA["cluster"], "cluster")
+    defaults = ClusterConfig()
+    scheduler = _choice(table.get("scheduler", defaults.scheduler), SCHEDULERS,
+                        "cluster.scheduler")
+    numbers = {}
+    for name in ("workers", "cores"):
+        numbers[name] = _integer(table.get(name, getattr(defaults, name)), f"cluster.{name}")
+        if numbers[name] < 1:
+            raise ConfigError(f"cluster.{name}: must be >= 1, got {numbers[name]}")
+    ranks = _integer(table.get("ranks", defaults.ranks), "cluster.ranks")
+    if ranks < 0:
+        raise ConfigError(f"cluster.ranks: must be >= 0 (0: from the estimate), got {ranks}")
+    memory = _number(table.get("memory", defaults.memory), "cluster.memory")
+    if not memory > 0:
+        raise ConfigError(f"cluster.memory: must be > 0 GiB, got {memory}")
+    walltime = _string(table.get("walltime", defaults.walltime), "cluster.walltime")
+    if not WALLTIME.match(walltime):
+        raise ConfigError(f"cluster.walltime: expected HH:MM:SS, e.g. '02:00:00', got "
+                          f"{walltime!r}")
+    optional = {}
+    for name in ("queue", "account"):
+        value = table.get(name)
+        optional[name] = None if value is None else _string(value, f"cluster.{name}")
+    return ClusterConfig(scheduler=scheduler, memory=memory, walltime=walltime, ranks=ranks,
+                         **numbers, **optional)
 
 
 def _parse_model(table: dict[str, Any]) -> LatticeConfig:

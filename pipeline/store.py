@@ -10,8 +10,13 @@ Layout (README.md, "Store layout", reproduces this)::
                                           timings  seconds per stage
                                           stages   {stage: {fingerprint, groups, finished,
                                                    ranks, peak_memory_mib_per_rank}}
+                                          sweep    sweep tasks only: {name, index, parameters,
+                                                   status (running|complete|failed), error}
         assemble/                       attrs: n_states, nnz, norm1, column_sum_defect, ...,
                                           ranks, ownership_ranges (slepc)
+        matrix/indptr                   int64   [row_pointer]  W in CSR (store.matrix = true):
+        matrix/indices                  int32/64 [entry]       row i holds entries
+        matrix/data                     float64 [entry]        indptr[i]:indptr[i+1]
         spectrum/eigenvalues            complex128 [mode]   slowest first; attrs: backend,
                                           method, certified, certificate, group_complete;
                                           slepc: ranks, rounds (nev, ncv, restarts, inner
@@ -27,6 +32,12 @@ Layout (README.md, "Store layout", reproduces this)::
         verify/                         attrs: passed (bool), checks (list of {name, source,
                                           value, reference, tolerance, passed})
         report/                         attrs: summary (text)
+      _sweeps/SWEEP/                    attrs: definition, parameters, tasks [{index, run,
+                                          parameters}] (written by the sweep driver only)
+        collected/                      'gapline collect': xarray dataset [task, mode] of
+                                          eigenvalues, gap, relaxation_time, status, ...;
+                                          attrs gap_fit, gap_fit_corrected (z, z_stderr,
+                                          fit_range); see pipeline/collect.py
       _staging/                         stage outputs being written (never read)
 
 Every output group also carries attrs ``stage``, ``fingerprint`` and ``complete`` (True).
@@ -74,7 +85,7 @@ __all__ = [
 LAYOUT_VERSION = 1
 #: stage -> the groups it writes under RUN/
 STAGE_GROUPS: dict[str, tuple[str, ...]] = {
-    "assemble": ("assemble",),
+    "assemble": ("assemble", "matrix"),
     "solve": ("spectrum", "stationary"),
     "verify": ("verify",),
     "report": ("report",),
@@ -83,7 +94,9 @@ STAGING = "_staging"
 #: what a run name may be: one directory under STORE/, never the root metadata file
 RUN_NAME = re.compile(r"[A-Za-z0-9][A-Za-z0-9_.\-]*")
 RESERVED_NAMES = ("zarr.json",)
-STATE_CHUNK = 1 << 20  # states per chunk along the state axis
+STATE_CHUNK = 1 << 20  # states (or matrix entries) per chunk along a long axis
+#: dimensions chunked by STATE_CHUNK (every other axis is one chunk)
+LONG_DIMS = ("state", "entry", "row_pointer")
 
 
 @dataclass
@@ -102,6 +115,7 @@ class ArraySpec:
     shape: tuple[int, ...] | None = None
     offset: int = 0
     chunk_rows: int | None = None
+    ordered: bool = False  # pieces not on chunk boundaries: ranks write one after another
 
     @property
     def distributed(self) -> bool:
@@ -146,6 +160,10 @@ class Store:
             self.root = self._open_root(mode="a")
             if "gapline_store" not in self.root.attrs:
                 self.root.attrs["gapline_store"] = LAYOUT_VERSION
+            if not (self.path / STAGING / "zarr.json").exists():
+                # Made here, once, by whoever creates the store (a sweep driver before its
+                # tasks start), so parallel stage commits never race to create it.
+                _zarr().open_group(str(self.path / STAGING), mode="a", zarr_format=3)
         else:
             if not (self.path / "zarr.json").exists():
                 raise StoreError(f"store {str(self.path)!r}: not found; fix: check the path or "
@@ -196,7 +214,11 @@ class Store:
     def update_run_attrs(self, run: str, attrs: dict[str, Any]) -> None:
         """Merge ``attrs`` into the run's attributes (rank 0 writes; every rank returns
         once they are written)."""
-        self.world.on_root(lambda: self._zarr_group(run).attrs.update(_jsonable(attrs)))
+        self.world.on_root(lambda: self._write_run_attrs(run, attrs))
+
+    def _write_run_attrs(self, run: str, attrs: dict[str, Any]) -> None:
+        """Merge ``attrs`` into the run's attributes (this process; rank 0 under MPI)."""
+        self._zarr_group(run).attrs.update(_jsonable(attrs))
 
     def stage_record(self, run: str, stage: str) -> dict[str, Any] | None:
         return self.run_attrs(run).get("stages", {}).get(stage)
@@ -223,7 +245,8 @@ class Store:
 
         def create_staging() -> None:
             # _staging is itself a (never read) group, so listing the root stays clean.
-            zarr.open_group(str(self.path / STAGING), mode="a", zarr_format=3)
+            if not (self.path / STAGING / "zarr.json").exists():
+                zarr.open_group(str(self.path / STAGING), mode="a", zarr_format=3)
             staging = zarr.open_group(str(staging_dir), mode="w", zarr_format=3)
             for name, content in groups.items():
                 group = staging.create_group(name)
@@ -233,16 +256,21 @@ class Store:
                         _fill_array(array, spec)
 
         parallel.on_root(create_staging)
-        # Distributed arrays: each rank writes the whole chunks of the rows it owns.
-        def fill_own_rows() -> None:
+        # Distributed arrays: each rank writes the whole chunks of the rows it owns; pieces
+        # that do not fall on chunk boundaries ("ordered") are written rank after rank.
+        def fill_own_rows(ordered: bool) -> None:
             for name, content in groups.items():
                 for array_name, spec in content.arrays.items():
-                    if spec.distributed:
+                    if spec.distributed and spec.ordered == ordered:
                         array = zarr.open_array(str(staging_dir / name / array_name), mode="r+",
                                                 zarr_format=3)
                         _fill_array(array, spec)
 
-        parallel.collective(fill_own_rows)
+        parallel.collective(lambda: fill_own_rows(False))
+        if any(spec.ordered for content in groups.values() for spec in content.arrays.values()):
+            for turn in range(parallel.size):  # a loop over ranks
+                parallel.collective(lambda turn=turn: fill_own_rows(True)
+                                    if parallel.rank == turn else None)
 
         def commit() -> None:
             staging = zarr.open_group(str(staging_dir), mode="r+", zarr_format=3)
@@ -273,7 +301,7 @@ class Store:
                 "finished": time.strftime("%Y-%m-%dT%H:%M:%S%z"),
                 **(record or {}),
             }
-            self._zarr_group(run).attrs.update(_jsonable({"stages": stages}))
+            self._write_run_attrs(run, {"stages": stages})
             for trash in replaced:
                 shutil.rmtree(trash, ignore_errors=True)
             shutil.rmtree(staging_dir, ignore_errors=True)
@@ -339,7 +367,7 @@ def _create_array(group: Any, name: str, spec: ArraySpec) -> Any:
     shape = tuple(spec.shape) if spec.distributed else data.shape
     state_rows = spec.chunk_rows if spec.chunk_rows else STATE_CHUNK
     chunks = tuple(
-        min(max(size, 1), state_rows if dim == "state" else max(size, 1))
+        min(max(size, 1), state_rows if dim in LONG_DIMS else max(size, 1))
         for size, dim in zip(shape, spec.dims, strict=True)
     )
     if len(shape) == 2 and spec.dims[0] == "state":
@@ -361,6 +389,13 @@ def _fill_array(array: Any, spec: ArraySpec) -> None:
             array[...] = data
         return
     step = array.chunks[0]
+    if spec.ordered:  # align the pieces with the array's chunks
+        first = spec.offset
+        bounds = [first, *range((first // step + 1) * step, first + data.shape[0], step),
+                  first + data.shape[0]]
+        for low, high in zip(bounds[:-1], bounds[1:], strict=True):
+            array[low:high] = data[low - first : high - first]
+        return
     for start in range(0, data.shape[0], step):
         stop = min(start + step, data.shape[0])
         array[spec.offset + start : spec.offset + stop] = data[start:stop]

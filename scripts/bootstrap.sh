@@ -12,7 +12,8 @@ set -euo pipefail
 
 VENV="${1:-.venv}"
 PYTHON="${PYTHON:-python3}"
-DEBIAN_PACKAGES=(libpetsc-real-dev libslepc-real-dev openmpi-bin libopenmpi-dev pkg-config)
+DEBIAN_PACKAGES=(libpetsc-real-dev libslepc-real-dev openmpi-bin libopenmpi-dev pkg-config
+                 slurm-wlm munge)  # slurm/munge: the tests' one-node batch cluster
 
 say() { printf 'bootstrap: %s\n' "$*"; }
 

@@ -2,12 +2,14 @@
 
 from __future__ import annotations
 
+import numpy as np
+
 from pipeline.progress import log, warn
 from pipeline.stages.base import RunContext, StageOutput
-from pipeline.store import GroupData
+from pipeline.store import ArraySpec, GroupData
 
 NAME = "assemble"
-CONFIG_SECTIONS = ("model",)
+CONFIG_SECTIONS = ("model", "store.matrix")
 UPSTREAM: str | None = None
 COLLECTIVE = True  # every MPI rank takes part (its own rows)
 
@@ -37,4 +39,64 @@ def run(ctx: RunContext) -> StageOutput:
         "warnings": model.warnings(),
         **operator.info,
     }
-    return StageOutput({"assemble": GroupData(attrs=attrs)}, record={"seconds": operator.seconds})
+    groups = {"assemble": GroupData(attrs=attrs)}
+    if ctx.config.store.matrix:
+        groups["matrix"] = matrix_group(operator)
+    return StageOutput(groups, record={"seconds": operator.seconds})
+
+
+def matrix_group(operator) -> GroupData:
+    """The generator as CSR arrays (the backend's own when it holds a scipy matrix, else
+    rebuilt from the model's row blocks); read back by :class:`StoredGenerator`."""
+    import scipy.sparse as sp
+
+    handle = operator.handle if isinstance(operator.handle, dict) else {}
+    W = handle.get("W")
+    if "rows" in handle and not sp.issparse(W):
+        return _distributed_matrix_group(operator)
+    if not (sp.issparse(W) and W.format == "csr"):
+        from pipeline.models.stored import csr_from_model
+
+        indptr, indices, data = csr_from_model(operator.model)
+    else:
+        indptr, indices, data = W.indptr, W.indices, W.data
+    return GroupData(
+        arrays={
+            "indptr": ArraySpec(np.asarray(indptr, dtype=np.int64), ("row_pointer",)),
+            "indices": ArraySpec(indices, ("entry",)),
+            "data": ArraySpec(np.asarray(data, dtype=np.float64), ("entry",)),
+        },
+        attrs={"format": "csr", "n_states": operator.n_states, "nnz": operator.nnz,
+               "conserving": operator.check.conserving,
+               "convention": "W[i, j] = rate j -> i; row i = entries indptr[i]:indptr[i+1]"},
+    )
+
+
+def _distributed_matrix_group(operator) -> GroupData:
+    """Each rank's own rows of W (the slepc backend's local CSR), written rank after rank
+    (their entry ranges do not fall on chunk boundaries), so no rank holds all of W."""
+    from pipeline.parallel import world
+
+    parallel = world()
+    start, stop = operator.handle["rows"]
+    indptr, indices, data = operator.handle["W"].getValuesCSR()
+    counts = parallel.allgather(int(indptr[-1]))
+    before = int(sum(counts[: parallel.rank]))
+    total = int(sum(counts))
+    n = operator.n_states
+    # Rank 0 writes indptr[0] = 0 too; every rank writes indptr[start + 1 : stop + 1].
+    pointers = np.asarray(indptr[0 if start == 0 else 1 :], dtype=np.int64) + before
+    first = 0 if start == 0 else start + 1
+    return GroupData(
+        arrays={
+            "indptr": ArraySpec(pointers, ("row_pointer",), shape=(n + 1,), offset=first,
+                                ordered=True),
+            "indices": ArraySpec(np.asarray(indices), ("entry",), shape=(total,),
+                                 offset=before, ordered=True),
+            "data": ArraySpec(np.asarray(data, dtype=np.float64), ("entry",), shape=(total,),
+                              offset=before, ordered=True),
+        },
+        attrs={"format": "csr", "n_states": n, "nnz": total,
+               "conserving": operator.check.conserving,
+               "convention": "W[i, j] = rate j -> i; row i = entries indptr[i]:indptr[i+1]"},
+    )

@@ -19,7 +19,15 @@ from pipeline.stages import STAGE_NAMES, STAGES
 from pipeline.stages.base import RunContext
 from pipeline.store import STAGE_GROUPS, Store
 
-__all__ = ["RunOutcome", "run_pipeline", "software_versions", "stage_fingerprints"]
+__all__ = [
+    "RunOutcome",
+    "config_sections",
+    "run_is_current",
+    "run_pipeline",
+    "software_versions",
+    "stage_fingerprints",
+    "stage_is_current",
+]
 
 
 @dataclass
@@ -48,12 +56,41 @@ def stage_fingerprints(config: Config) -> dict[str, str]:
     prints: dict[str, str] = {}
     for stage in STAGES:
         payload: dict[str, Any] = {
-            "sections": {name: resolved.get(name) for name in stage.CONFIG_SECTIONS},
+            "sections": config_sections(resolved, stage.CONFIG_SECTIONS),
             "upstream": prints.get(stage.UPSTREAM) if stage.UPSTREAM else None,
             "code": pipeline.__version__,
         }
         prints[stage.NAME] = fingerprint(payload)
     return prints
+
+
+def config_sections(resolved: dict[str, Any], names: tuple[str, ...]) -> dict[str, Any]:
+    """The parts of a resolved config a stage reads: whole sections (``"model"``) or single
+    fields (``"store.matrix"``)."""
+    picked: dict[str, Any] = {}
+    for name in names:
+        node: Any = resolved
+        for part in name.split("."):
+            node = node.get(part) if isinstance(node, dict) else None
+        picked[name] = node
+    return picked
+
+
+def stage_is_current(store: Store, run: str, stage: str, prints: dict[str, str]) -> bool:
+    """True when ``stage`` of ``run`` is committed with the current fingerprint and every
+    group it wrote is complete (not interrupted, superseded or stale)."""
+    if not store.has_run(run):
+        return False
+    record = store.stage_record(run, stage)
+    if record is None or record.get("fingerprint") != prints[stage]:
+        return False
+    return all(store.group_status(run, name) == "complete"
+               for name in record.get("groups", STAGE_GROUPS[stage]))
+
+
+def run_is_current(store: Store, run: str, prints: dict[str, str]) -> bool:
+    """True when every stage of ``run`` is committed and current (nothing left to do)."""
+    return all(stage_is_current(store, run, name, prints) for name in STAGE_NAMES)
 
 
 def run_pipeline(
@@ -62,7 +99,9 @@ def run_pipeline(
     start: str | None = None,
     only: str | None = None,
 ) -> RunOutcome:
-    """Run the stages of ``config`` (all, from ``start`` on, or ``only`` one)."""
+    """Run the stages of ``config``: without ``start``/``only`` every stage that is not up
+    to date (committed with its current fingerprint, groups complete); ``start`` forces that
+    stage and all later ones, ``only`` forces one stage."""
     for label, value in (("--from", start), ("--only", only)):
         if value is not None and value not in STAGE_NAMES:
             raise ConfigError(f"{label}: unknown stage {value!r}; expected one of "
@@ -100,18 +139,25 @@ def run_pipeline(
         "versions": software_versions(),
     }
     verified = None
+    forced = start is not None or only is not None
+    executed = []
     for stage in STAGES:
         if stage.NAME not in selected:
             continue
+        if not forced and stage_is_current(store, run, stage.NAME, prints):
+            log(f"stage {stage.NAME}: up to date")
+            if stage.NAME == "verify":
+                verified = bool(store.group(run, "verify").attrs["passed"])
+            continue
+        executed.append(stage.NAME)
         log(f"stage {stage.NAME}: started")
         started = time.perf_counter()
         if getattr(stage, "COLLECTIVE", False):
             output = stage.run(ctx)
         else:  # reads the store: once, on rank 0; every rank gets the outcome
             output = parallel.on_root(lambda stage=stage: stage.run(ctx))
-        resolved = config.resolved()
         record = {**output.record,
-                  "config": {name: resolved.get(name) for name in stage.CONFIG_SECTIONS},
+                  "config": config_sections(config.resolved(), stage.CONFIG_SECTIONS),
                   "ranks": parallel.size,
                   "peak_memory_mib_per_rank": _peak_memory(parallel)}
         store.write_stage(run, stage.NAME, output.groups, prints[stage.NAME], record,
@@ -123,7 +169,7 @@ def run_pipeline(
         log(f"stage {stage.NAME}: committed in {seconds:.2f} s")
         if stage.NAME == "verify":
             verified = output.passed
-    return RunOutcome(run=run, store=str(store.path), stages_run=selected, verified=verified)
+    return RunOutcome(run=run, store=str(store.path), stages_run=executed, verified=verified)
 
 
 def _peak_memory(parallel: World) -> list[float]:

@@ -17,13 +17,32 @@ UPSTREAM = "assemble"
 COLLECTIVE = True  # every MPI rank takes part (its own rows)
 
 
+def stored_generator(ctx: RunContext):
+    """The committed ``RUN/matrix`` of the current assemble fingerprint as a model, or None
+    (``store.matrix`` off, or no complete matrix from this config)."""
+    if not ctx.config.store.matrix or not ctx.store.has_run(ctx.run):
+        return None
+    group = ctx.store.group(ctx.run, "matrix", required=False)
+    if group is None or group.attrs.get("fingerprint") != ctx.fingerprints.get("assemble"):
+        return None
+    from pipeline.models.stored import StoredGenerator
+
+    return StoredGenerator(group["indptr"], group["indices"], group["data"], ctx.model,
+                           fingerprint=str(group.attrs["fingerprint"]))
+
+
 def run(ctx: RunContext) -> StageOutput:
     settings = ctx.config.solve
     backend = ctx.backend
     started = time.perf_counter()
     if ctx.operator is None:
-        log("solve: building the operator from the model (assemble results are reused)")
-        ctx.operator = backend.assemble(ctx.model)
+        stored = stored_generator(ctx)
+        if stored is not None:
+            log("solve: reading the stored generator (RUN/matrix), not the model")
+            ctx.operator = backend.assemble(stored)
+        else:
+            log("solve: building the operator from the model (assemble results are reused)")
+            ctx.operator = backend.assemble(ctx.model)
     operator = ctx.operator
     modes = backend.slowest_modes(
         operator,
