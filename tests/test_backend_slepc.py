@@ -98,6 +98,14 @@ def test_stationary_law(solved, name):
     assert stationary.rows == (0, model.n_states)
 
 
+@pytest.mark.parametrize("name", list(CASES))
+def test_normal_balanced_generators_take_the_symmetric_part_path(solved, name):
+    """Rings, reversible chains and driven tori are normal after balancing by the stationary
+    law (circulants and symmetric matrices are normal; Horn and Johnson 2013, 2.5)."""
+    _, _, modes, _, _ = solved[name]
+    assert modes.info["search"] == "symmetric part"
+
+
 def test_reflecting_stationary_law_needs_a_real_solve(solved):
     _, _, _, stationary, _ = solved["reflecting-200"]
     assert "inverse iteration" in stationary.method  # W 1 != 0: not the uniform shortcut
@@ -193,9 +201,11 @@ def test_petsc_options_reach_the_solver():
 
     backend = SlepcBackend()
     backend.configure(SolveConfig(petsc={"eps_ncv": 70}))
-    modes = backend.slowest_modes(backend.assemble(LatticeWalk((500,), ("periodic",), (1.0,),
-                                                              (0.5,))),
+    # An absorbing chain (a sub-generator): the general Krylov–Schur path on W.
+    modes = backend.slowest_modes(backend.assemble(LatticeWalk((500,), ("absorbing",), (1.0,),
+                                                              (0.9,))),
                                   5, method="shift-invert")
+    assert modes.info["search"] == "general"
     assert modes.info["rounds"][0]["ncv"] == 70
     assert modes.info["petsc_options"] == {"eps_ncv": "70"}
 

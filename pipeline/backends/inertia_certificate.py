@@ -127,6 +127,7 @@ def certify_by_inertia(
     vectors: np.ndarray,
     shift: float,
     options_prefix: str = "gapline_cert_",
+    factor_cache: dict[float, Any] | None = None,
 ) -> InertiaCertificate:
     """Decide whether ``values`` (found eigenvalues, all with real part > ``shift``; their
     right eigenvectors ``vectors``, local rows ``[row, k]``) are all of ``W``'s eigenvalues
@@ -134,6 +135,8 @@ def certify_by_inertia(
 
     ``scaling``: local rows of ``D`` (positive). ``shift``: ``t``, placed inside a gap of the
     found real parts (the caller picks it between the last wanted group and the next one).
+    ``factor_cache``: keeps the factorization of ``t I - S`` per ``t`` for repeated tests
+    (the caller destroys the entries: ``(ksp, matrix, inertia)``).
     """
     PETSc = petsc()
     started = time.perf_counter()
@@ -161,25 +164,33 @@ def certify_by_inertia(
         kappa = np.inf
     bound = residual * (kappa / gap * (1 + left_residual / gap) + 1 / gap) if gap > 0 else np.inf
     # The inertia test.
-    S, _ = symmetric_part(W, scaling)
-    S.scale(-1.0)
-    S.shift(shift)  # M = t I - S
-    S.setOption(PETSc.Mat.Option.SYMMETRIC, True)
-    ksp = PETSc.KSP().create(comm=W.getComm())
-    ksp.setOperators(S)
-    ksp.setType("preonly")
-    pc = ksp.getPC()
-    pc.setType("cholesky")
-    pc.setFactorSolverType("mumps")
-    ksp.setOptionsPrefix(options_prefix)
-    options = PETSc.Options()
-    options.setValue(f"{options_prefix}mat_mumps_icntl_24", 1)  # null pivots: exact inertia
-    options.setValue(f"{options_prefix}mat_mumps_icntl_13", 1)  # root node on one rank (inertia)
-    ksp.setFromOptions()
-    factor_started = time.perf_counter()
-    ksp.setUp()
-    factor_seconds = time.perf_counter() - factor_started
-    negative, zero, _positive = pc.getFactorMatrix().getInertia()
+    cached = factor_cache.get(shift) if factor_cache is not None else None
+    if cached is None:
+        S, _ = symmetric_part(W, scaling)
+        S.scale(-1.0)
+        S.shift(shift)  # M = t I - S
+        S.setOption(PETSc.Mat.Option.SYMMETRIC, True)
+        ksp = PETSc.KSP().create(comm=W.getComm())
+        ksp.setOperators(S)
+        ksp.setType("preonly")
+        pc = ksp.getPC()
+        pc.setType("cholesky")
+        pc.setFactorSolverType("mumps")
+        ksp.setOptionsPrefix(options_prefix)
+        options = PETSc.Options()
+        options.setValue(f"{options_prefix}mat_mumps_icntl_24", 1)  # null pivots: inertia
+        options.setValue(f"{options_prefix}mat_mumps_icntl_13", 1)  # root node on one rank
+        ksp.setFromOptions()
+        factor_started = time.perf_counter()
+        ksp.setUp()
+        factor_seconds = time.perf_counter() - factor_started
+        inertia = pc.getFactorMatrix().getInertia()
+        if factor_cache is not None:
+            factor_cache[shift] = (ksp, S, inertia)
+    else:
+        ksp, S, inertia = cached
+        factor_seconds = 0.0
+    negative, zero, _positive = inertia
     solution = np.empty_like(Q)
     source, target = S.createVecs()
     for j in range(k):  # k solves with the one factorization
@@ -192,8 +203,9 @@ def certify_by_inertia(
     captured = int(np.sum(g_values < 0))
     tiny_g = bool(k) and float(np.min(np.abs(g_values))) <= 1e-13 * float(
         np.max(np.abs(g_values)))
-    ksp.destroy()
-    S.destroy()
+    if factor_cache is None:
+        ksp.destroy()
+        S.destroy()
     certified = (zero == 0 and negative == captured and not tiny_g and bound < 1.0
                  and not dependent)
     if dependent and k < values.size:
