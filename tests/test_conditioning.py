@@ -59,3 +59,20 @@ def test_cluster_cut_by_the_requested_count_is_taken_whole():
     # Projector onto the pair along the third eigenvector: P = X diag(1,1,0) X^{-1}.
     projector = basis @ np.diag([1.0, 1.0, 0.0]) @ np.linalg.inv(basis)
     np.testing.assert_allclose(condition[0], np.linalg.norm(projector, 2), rtol=1e-6)
+
+
+def test_gram_version_equals_the_vector_version():
+    """The MPI form (inner products only) gives the same conditions as the one-process form
+    on a random non-normal matrix with a forced cluster (dense LAPACK eigenvectors)."""
+    from pipeline.backends.conditioning import conditions_from_products
+
+    rng = np.random.default_rng(3)
+    matrix = rng.standard_normal((30, 30))
+    values, left, right = scipy.linalg.eig(matrix, left=True, right=True)
+    right = right * rng.uniform(1, 3, 30)  # unnormalized columns must not matter
+    chosen = np.arange(10)
+    direct = eigenvalue_conditions(values, right, values, left, 1e-8, chosen)
+    from_products = conditions_from_products(values, values, right.conj().T @ right,
+                                             left.conj().T @ left, left.conj().T @ right,
+                                             1e-8, chosen)
+    np.testing.assert_allclose(from_products, direct, rtol=1e-10)

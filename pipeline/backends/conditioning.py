@@ -59,17 +59,9 @@ def eigenvalue_conditions(
     are numerically dependent (a defective eigenvalue, a Jordan block) or whose left partners
     do not match it one to one.
     """
-    right_values = np.asarray(right_values, dtype=complex)
-    left_values = np.asarray(left_values, dtype=complex)
     chosen = np.asarray(chosen)
     conditions = np.full(chosen.size, np.inf)
-    labels = cluster_labels(right_values, tolerance)
-    for label in np.unique(labels[chosen]):  # a loop over clusters of modes, not states
-        members = np.flatnonzero(labels == label)
-        distance = np.abs(left_values[:, None] - right_values[None, members]).min(axis=1)
-        partners = np.flatnonzero(distance <= tolerance)
-        if partners.size != members.size:
-            continue
+    for members, partners in _clusters(right_values, left_values, tolerance, chosen):
         q_right = _independent_basis(right[:, members])
         q_left = _independent_basis(left[:, partners])
         if q_right is None or q_left is None:
@@ -78,6 +70,21 @@ def eigenvalue_conditions(
         if smallest > 0:
             conditions[np.isin(chosen, members)] = 1.0 / smallest
     return conditions
+
+
+def _clusters(right_values: np.ndarray, left_values: np.ndarray, tolerance: float,
+              chosen: np.ndarray):
+    """Clusters of the chosen right eigenvalues (whole), each with its left partners:
+    ``(members, partners)`` index arrays, only where they match one to one."""
+    right_values = np.asarray(right_values, dtype=complex)
+    left_values = np.asarray(left_values, dtype=complex)
+    labels = cluster_labels(right_values, tolerance)
+    for label in np.unique(labels[np.asarray(chosen)]):  # a loop over clusters of modes
+        members = np.flatnonzero(labels == label)
+        distance = np.abs(left_values[:, None] - right_values[None, members]).min(axis=1)
+        partners = np.flatnonzero(distance <= tolerance)
+        if partners.size == members.size:
+            yield members, partners
 
 
 def _independent_basis(vectors: np.ndarray) -> np.ndarray | None:
@@ -109,17 +116,9 @@ def conditions_from_products(
     ``1 / sigma_min(G_l^{-1/2} L_c^H R_c G_r^{-1/2})``; a Gram matrix whose relative smallest
     eigenvalue is below 1e-16 (singular values below 1e-8) marks dependent vectors: ``inf``.
     """
-    right_values = np.asarray(right_values, dtype=complex)
-    left_values = np.asarray(left_values, dtype=complex)
     chosen = np.asarray(chosen)
     conditions = np.full(chosen.size, np.inf)
-    labels = cluster_labels(right_values, tolerance)
-    for label in np.unique(labels[chosen]):  # a loop over clusters of modes, not states
-        members = np.flatnonzero(labels == label)
-        distance = np.abs(left_values[:, None] - right_values[None, members]).min(axis=1)
-        partners = np.flatnonzero(distance <= tolerance)
-        if partners.size != members.size:
-            continue
+    for members, partners in _clusters(right_values, left_values, tolerance, chosen):
         right_root = _inverse_root(right_gram[np.ix_(members, members)])
         left_root = _inverse_root(left_gram[np.ix_(partners, partners)])
         if right_root is None or left_root is None:
