@@ -224,3 +224,18 @@ modes = 4
 def test_bad_exclusion_input_is_one_line(tmp_path, capsys, fields, fragment):
     path = write_config(tmp_path, "bad", f"[model]\ntype = \"exclusion\"\n{fields}\n")
     check_error(capsys, path, fragment)
+
+
+def test_krylov_method_on_a_driven_ring_matches_dense():
+    # Nonsymmetric W: the Arnoldi variant (which='LR') against numpy.linalg.eigvals.
+    model = ExclusionProcess(10, "periodic", 1.0, 0.3, particles=4)
+    modes, stationary, _ = solve("scipy", model, 3, method="krylov")
+    assert not modes.certified and modes.condition is None
+    dense = rightmost(dense_W(model), 3)
+    np.testing.assert_allclose(np.sort_complex(modes.values), np.sort_complex(dense), atol=1e-8)
+    np.testing.assert_allclose(stationary.distribution, 1 / model.n_states, atol=1e-10)
+
+
+def test_large_rings_warn_about_lu_fill_in():
+    assert ExclusionProcess(26, "periodic", 1.0, 1.0, particles=13).warnings()
+    assert not ExclusionProcess(10, "periodic", 1.0, 1.0, particles=5).warnings()
