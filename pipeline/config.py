@@ -27,7 +27,13 @@ __all__ = [
     "SCHEMA",
     "Config",
     "DisorderConfig",
+    "ExclusionConfig",
     "LatticeConfig",
+    "MatrixConfig",
+    "ModelConfig",
+    "NetworkConfig",
+    "ReactionConfig",
+    "ReactionsConfig",
     "RunConfig",
     "SolveConfig",
     "StoreConfig",
@@ -44,7 +50,7 @@ __all__ = [
 
 BOUNDARIES = ("periodic", "reflecting", "absorbing")
 BACKENDS = ("auto", "scipy", "slepc")
-METHODS = ("auto", "dense", "shift-invert")
+METHODS = ("auto", "dense", "shift-invert", "krylov")
 INNER_SOLVERS = ("direct", "iterative")
 PRECONDITIONERS = ("auto", "bjacobi", "asm", "gamg", "hypre")
 PETSC_OPTION = re.compile(r"[A-Za-z][A-Za-z0-9_]*")
@@ -60,7 +66,11 @@ SCHEMA: dict[str, dict[str, tuple[str, Any, str]]] = {
         "description": ("string", "", "free text kept with the results"),
     },
     "model": {
-        "type": ("string", REQUIRED, "model family; one of: lattice"),
+        "type": (
+            "string",
+            REQUIRED,
+            "model family; one of: lattice, exclusion, reactions, network, matrix",
+        ),
     },
     "model:lattice": {
         "size": ("int or list of int", REQUIRED, "sites per axis (>= 2); the list length is d"),
@@ -88,6 +98,121 @@ SCHEMA: dict[str, dict[str, tuple[str, Any, str]]] = {
         "sigma": ("float", 0.5, "lognormal law: standard deviation of ln(factor); median 1"),
         "seed": ("int", 0, "seed of the factors; results do not depend on block sizes or ranks"),
     },
+    "model:exclusion": {
+        "sites": ("int", REQUIRED, "lattice sites L (>= 2)"),
+        "boundary": (
+            "string",
+            "periodic",
+            "'periodic' (a ring with a fixed particle number: C(L, N) states) or 'open' "
+            "(a segment with reservoirs at both ends: 2^L states)",
+        ),
+        "particles": ("int", None, "periodic only: particle number N (0..L)"),
+        "right": ("float", 1.0, "hop rate p of a particle to the empty right neighbour (>= 0)"),
+        "left": ("float", 0.0, "hop rate q of a particle to the empty left neighbour (>= 0)"),
+        "alpha": ("float", 1.0, "open only: entry rate at the left end (site 0 empty)"),
+        "beta": ("float", 1.0, "open only: exit rate at the right end (site L-1 full)"),
+        "gamma": ("float", 0.0, "open only: exit rate at the left end (site 0 full)"),
+        "delta": ("float", 0.0, "open only: entry rate at the right end (site L-1 empty)"),
+    },
+    "model:reactions": {
+        "species": ("list of string", REQUIRED, "species names (letters, digits, '_')"),
+        "bounds": (
+            "int or list of int",
+            REQUIRED,
+            "finite state projection: largest copy number kept per species (counts 0..bound)",
+        ),
+        "parameters": ("table", None, "named constants usable in propensity expressions"),
+        "truncation": (
+            "string",
+            "leak",
+            "'leak': jumps out of the projection leave the system (W is a sub-generator; "
+            "the decay rate of the slowest mode is the outflow); 'reflect': they are dropped "
+            "(W conserves; the stationary outflow they would carry is stored)",
+        ),
+        "reactions": ("array of tables", REQUIRED, "the reactions, see model.reactions.*"),
+    },
+    "model.reactions": {
+        "name": ("string", None, "label used in messages; default: reaction index"),
+        "reactants": ("table", None, "species -> molecules consumed, e.g. {A = 2}"),
+        "products": ("table", None, "species -> molecules produced, e.g. {B = 1}"),
+        "rate": (
+            "float",
+            None,
+            "mass-action constant c: propensity c * prod_s C(x_s, reactant_s) (Gillespie)",
+        ),
+        "propensity": (
+            "string",
+            None,
+            "instead of rate: an expression of species counts and parameters with + - * / "
+            "**, exp, log, sqrt, min, max, abs, hill(x, K, n) = x^n / (K^n + x^n)",
+        ),
+    },
+    "model:network": {
+        "file": ("string", REQUIRED, "graph file, relative to the config file's directory"),
+        "format": (
+            "string",
+            "auto",
+            "'edgelist' (CSV/TSV: source, target[, rate], optional header), 'mtx' (Matrix "
+            "Market, entry (i, j) = weight of the edge i -> j), 'graphml', or 'auto' (by "
+            "extension: .csv .tsv .txt .mtx .graphml)",
+        ),
+        "directed": (
+            "bool",
+            True,
+            "edge lists and Matrix Market: edges are one-way (false: both ways); GraphML "
+            "says itself",
+        ),
+        "weight": ("string", "weight", "GraphML edge attribute holding the rate (missing: 1)"),
+        "nodes": (
+            "list of string",
+            None,
+            "edge lists: the node labels, in state order (isolated nodes allowed; an edge "
+            "to an unlisted node is an error); default: as they first appear",
+        ),
+        "walk": (
+            "string",
+            "edge",
+            "'edge': each edge is a jump at rate = its weight; 'node': each node is left at "
+            "rate model.node_rate, split over its out-edges in proportion to weight",
+        ),
+        "node_rate": ("float", 1.0, "walk = 'node': exit rate of every node (> 0)"),
+        "teleport": (
+            "float",
+            0.0,
+            "restart rate: from every node, a jump to the restart target at this rate (>= 0)",
+        ),
+        "restart": (
+            "string",
+            None,
+            "label of the restart node; default: a uniformly random node (dense: at most "
+            "4096 nodes)",
+        ),
+    },
+    "model:matrix": {
+        "file": (
+            "string",
+            REQUIRED,
+            "generator file: Matrix Market (.mtx) or scipy sparse .npz; relative to the "
+            "config file's directory",
+        ),
+        "convention": (
+            "string",
+            "columns",
+            "'columns': entry (i, j) is the rate j -> i, columns sum to 0 (gapline's own); "
+            "'rows': entry (i, j) is the rate i -> j, rows sum to 0 (transposed on load)",
+        ),
+        "diagonal": (
+            "string",
+            "given",
+            "'given': the file holds the diagonal and it is checked; 'from-rates': the "
+            "diagonal is set to minus the exit rates (any diagonal in the file is ignored)",
+        ),
+        "conserving": (
+            "bool",
+            True,
+            "false: a sub-generator (sums <= 0, probability may leave)",
+        ),
+    },
     "solve": {
         "modes": ("int", 10, "slowest modes wanted, the stationary mode 0 included (>= 1)"),
         "backend": (
@@ -100,8 +225,9 @@ SCHEMA: dict[str, dict[str, tuple[str, Any, str]]] = {
             "string",
             "auto",
             "'dense' (full eigendecomposition, certified complete), 'shift-invert' "
-            "(sparse LU + Arnoldi with a completeness certificate) or 'auto' (dense up to "
-            "solve.dense_limit states)",
+            "(sparse LU + Arnoldi with a completeness certificate), 'krylov' (Lanczos or "
+            "Arnoldi on W itself, no LU: for huge problems whose LU fills in; never certified "
+            "complete) or 'auto' (dense up to solve.dense_limit states)",
         ),
         "dense_limit": ("int", 1024, "largest state count solved densely by method 'auto'"),
         "tolerance": ("float", 1e-12, "relative convergence tolerance of the eigensolver"),
@@ -217,6 +343,65 @@ class LatticeConfig:
 
 
 @dataclass(frozen=True)
+class ExclusionConfig:
+    type: str
+    sites: int
+    boundary: str
+    particles: int | None
+    right: float
+    left: float
+    alpha: float = 0.0
+    beta: float = 0.0
+    gamma: float = 0.0
+    delta: float = 0.0
+
+
+@dataclass(frozen=True)
+class ReactionConfig:
+    name: str
+    reactants: tuple[tuple[str, int], ...]
+    products: tuple[tuple[str, int], ...]
+    rate: float | None
+    propensity: str | None
+
+
+@dataclass(frozen=True)
+class ReactionsConfig:
+    type: str
+    species: tuple[str, ...]
+    bounds: tuple[int, ...]
+    parameters: tuple[tuple[str, float], ...]
+    truncation: str
+    reactions: tuple[ReactionConfig, ...]
+
+
+@dataclass(frozen=True)
+class NetworkConfig:
+    type: str
+    file: str
+    format: str
+    directed: bool
+    weight: str
+    walk: str
+    node_rate: float
+    teleport: float
+    restart: str | None
+    nodes: tuple[str, ...] | None = None
+
+
+@dataclass(frozen=True)
+class MatrixConfig:
+    type: str
+    file: str
+    convention: str
+    diagonal: str
+    conserving: bool
+
+
+ModelConfig = LatticeConfig | ExclusionConfig | ReactionsConfig | NetworkConfig | MatrixConfig
+
+
+@dataclass(frozen=True)
 class RunConfig:
     name: str
     description: str = ""
@@ -277,7 +462,7 @@ class Config:
     """A validated config. ``raw`` is the resolved table tree (after overrides)."""
 
     run: RunConfig
-    model: LatticeConfig
+    model: ModelConfig
     solve: SolveConfig
     verify: VerifyConfig
     store: StoreConfig
@@ -421,7 +606,7 @@ def parse_config(raw: dict[str, Any], source: str | None = None) -> Config:
                                                    "run.description"))
     if "model" not in raw:
         raise ConfigError("model: missing table; fix: add [model] with type = \"lattice\"")
-    model = _parse_model(_table(raw, "model"))
+    model = _parse_model(_table(raw, "model"), source)
     solve = _parse_solve(_table(raw, "solve"))
     verify = _parse_verify(_table(raw, "verify"))
     store_table = _table(raw, "store")
@@ -503,7 +688,7 @@ def _parse_cluster(table: dict[str, Any]) -> ClusterConfig:
                          **numbers, **optional)
 
 
-def _parse_model(table: dict[str, Any]) -> LatticeConfig:
+def _parse_model(table: dict[str, Any], source: str | None = None) -> ModelConfig:
     if "type" not in table:
         raise ConfigError("model.type: missing; fix: add type = \"lattice\" under [model]")
     model_type = _string(table["type"], "model.type")
@@ -516,7 +701,12 @@ def _parse_model(table: dict[str, Any]) -> LatticeConfig:
         )
     allowed = ["type", *SCHEMA[f"model:{model_type}"]]
     _reject_unknown(table, allowed, "model")
-    return _parse_lattice(table)
+    if model_type == "lattice":
+        return _parse_lattice(table)
+    from pipeline import model_configs  # parsers of the other model families
+
+    base = Path(source).resolve().parent if source else Path.cwd()
+    return model_configs.PARSERS[model_type](table, base)
 
 
 def _parse_lattice(table: dict[str, Any]) -> LatticeConfig:

@@ -27,8 +27,14 @@ Layout (README.md, "Store layout", reproduces this)::
                                           (slepc: of the balanced D^-1 W D, D = sqrt(p))
         spectrum/error_estimates        float64    [mode]   condition x residual x ||W||_1
         spectrum/vectors                complex128 [state, mode]   (solve.vectors = true)
+                                        sub-generators: attr quasi_stationary_outflow = -Re l_0
         stationary/distribution         float64    [state]  (conserving generators); attrs:
-                                          method, residual, negative_mass, error_estimate
+                                          method, residual, negative_mass, error_estimate,
+                                          observables {name: meaning}
+        stationary/<observable>         float64    [site|bond|species|...]  sum_x p(x) f(x, k)
+                                          for the model's observables (exclusion: density
+                                          [site], current [bond]; reactions: mean_counts
+                                          [species], outflow [outflow_total])
         verify/                         attrs: passed (bool), checks (list of {name, source,
                                           value, reference, tolerance, passed})
         report/                         attrs: summary (text)

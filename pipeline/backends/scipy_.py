@@ -163,6 +163,10 @@ class ScipyBackend(Backend):
             method = "dense"
         if method == "dense":
             return self._dense_modes(operator, count, vectors)
+        if method == "krylov":
+            from pipeline.backends.krylov import krylov_modes
+
+            return krylov_modes(operator, count, tolerance, vectors)
         return self._shift_invert_modes(operator, count, tolerance, vectors, max_search)
 
     def _dense_modes(self, operator: Operator, count: int, want_vectors: bool) -> Modes:
@@ -388,6 +392,9 @@ class ScipyBackend(Backend):
         cached = operator.handle.get("stationary")
         if cached is not None:
             return cached
+        if "krylov_stationary" in operator.handle:  # left by method 'krylov' (no LU at all)
+            operator.handle["stationary"] = operator.handle["krylov_stationary"]
+            return operator.handle["stationary"]
         started = time.perf_counter()
         W = operator.handle["W"]
         n = operator.n_states

@@ -205,7 +205,79 @@ class SlepcBackend(Backend):
             method = "dense"
         if method == "dense":
             return self._dense_modes(operator, count, vectors)
+        if method == "krylov":
+            return self._plain_krylov_modes(operator, count, tolerance, vectors)
         return self._krylov_modes(operator, count, tolerance, vectors, max_search)
+
+    def _plain_krylov_modes(self, operator: Operator, count: int, tolerance: float,
+                            want_vectors: bool) -> Modes:
+        """Method ``krylov``: Krylov–Schur on ``W`` itself, no factorization, largest real
+        parts (symmetric Lanczos when ``W = W^T``); never certified complete (a Krylov
+        method proves nothing about eigenvalues it has not seen). The stationary vector is
+        the mode-0 eigenvector of a conserving ``W``."""
+        from slepc4py import SLEPc
+
+        started = time.perf_counter()
+        W = operator.handle["W"]
+        n = operator.n_states
+        rows = operator.handle["rows"]
+        scale = operator.check.norm1
+        if count >= n - 1:
+            raise SolverError(f"solve.method: 'krylov' finds at most n - 2 = {n - 2} modes; "
+                              "use 'dense' for this problem")
+        probe = start_vector(*rows)[:, None]
+        symmetric = float(global_norms(self.world, apply(W, probe) - apply_transpose(W, probe))
+                          .max()) <= 1e-13 * scale * float(global_norms(self.world, probe).max())
+        eps = SLEPc.EPS().create(comm=W.getComm())
+        eps.setOperators(W)
+        eps.setProblemType(SLEPc.EPS.ProblemType.HEP if symmetric
+                           else SLEPc.EPS.ProblemType.NHEP)
+        eps.setWhichEigenpairs(SLEPc.EPS.Which.LARGEST_REAL)
+        nev = min(n - 2, count + EXTRA_MODES)
+        eps.setDimensions(nev=nev, ncv=min(n - 1, max(4 * nev, 64)))
+        eps.setTolerances(tol=max(tolerance, KRYLOV_TOLERANCE_FLOOR), max_it=100000)
+        space = W.createVecRight()
+        space.getArray()[:] = probe[:, 0]
+        eps.setInitialSpace([space])
+        self._apply_user_options()
+        eps.setFromOptions()
+        eps.solve()
+        converged = eps.getConverged()
+        values = np.array([eps.getEigenvalue(i) for i in range(converged)], dtype=complex)
+        local = np.empty((rows[1] - rows[0], converged), dtype=complex)
+        vr, vi = W.createVecs()
+        for i in range(converged):  # a loop over modes
+            eps.getEigenvector(i, vr, vi)
+            local[:, i] = vr.getArray(readonly=True) + 1j * vi.getArray(readonly=True)
+        iterations = int(eps.getIterationNumber())
+        eps.destroy()
+        if converged < count:
+            raise SolverError(f"solve: Krylov–Schur on W converged {converged} of {count} "
+                              "modes; raise solve.tolerance or use method 'shift-invert'")
+        local = normalize_columns(self.world, local, rows[0])
+        values = self._rayleigh_quotients(W, local)
+        residuals = self._residuals(W, values, local, scale)
+        chosen, group_complete = take_slowest(values, count, grouping_tolerance(values, scale))
+        if operator.check.conserving and "stationary" not in operator.handle:
+            top = int(np.argmax(values.real))
+            p = np.abs(local[:, top].real)
+            operator.handle["stationary"] = (p / self.world.sum(float(p.sum())),
+                                             "eigenvector of mode 0 (method krylov)", 0,
+                                             float("nan"))
+        note = "NOT CERTIFIED: a Krylov method on W cannot prove that no slower mode exists"
+        return Modes(
+            values=values[chosen].astype(np.complex128), residuals=residuals[chosen],
+            vectors=local[:, chosen] if want_vectors else None,
+            method=("Lanczos" if symmetric else "Krylov–Schur") + " (SLEPc) on W, largest "
+                   "real parts, no factorization",
+            certified=False, certificate={"kind": "none", "note": note},
+            group_complete=group_complete, seconds=time.perf_counter() - started,
+            condition=np.ones(chosen.size) if symmetric else None,
+            error_estimates=(residuals[chosen] * scale) if symmetric else None,
+            info={**self._provenance(operator), "search": "krylov", "symmetric": symmetric,
+                  "iterations": iterations, "converged": int(converged)},
+            vector_rows=rows if want_vectors else None,
+        )
 
     def _gather_scipy(self, operator: Operator) -> sp.csr_matrix:
         """The whole (small) matrix on every rank: only for the dense method."""

@@ -17,6 +17,10 @@ __all__ = ["MODEL_TYPES", "Model", "RowBlock", "build_model"]
 #: type name -> (module, class). Imported lazily so one model's dependencies never block another.
 MODEL_TYPES: dict[str, tuple[str, str]] = {
     "lattice": ("pipeline.models.lattice", "LatticeWalk"),
+    "exclusion": ("pipeline.models.exclusion", "ExclusionProcess"),
+    "reactions": ("pipeline.models.reactions", "ReactionNetwork"),
+    "network": ("pipeline.models.network", "GraphWalk"),
+    "matrix": ("pipeline.models.matrix", "UserMatrix"),
 }
 
 

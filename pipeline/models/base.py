@@ -10,6 +10,7 @@ same call. Models never import a solver library or the store.
 from __future__ import annotations
 
 from abc import ABC, abstractmethod
+from collections.abc import Callable
 from dataclasses import dataclass
 from typing import Any, ClassVar, Protocol
 
@@ -17,7 +18,15 @@ import numpy as np
 
 from pipeline.errors import ModelError
 
-__all__ = ["BLOCK_TOLERANCE", "ExactResults", "Model", "RowBlock", "validate_block"]
+__all__ = [
+    "BLOCK_TOLERANCE",
+    "ExactResults",
+    "LinearObservable",
+    "Model",
+    "RowBlock",
+    "compress_stencil",
+    "validate_block",
+]
 
 #: Relative tolerance of the generator checks (column sums against the largest exit rate).
 BLOCK_TOLERANCE = 1e-12
@@ -40,6 +49,21 @@ class RowBlock:
     @property
     def nnz(self) -> int:
         return int(self.indptr[-1])
+
+
+@dataclass(frozen=True)
+class LinearObservable:
+    """A per-state quantity whose expectation ``sum_x p(x) f(x, k)`` is stored.
+
+    ``values(start, stop)`` returns float64 ``[state, dim]`` for states ``start..stop-1``
+    (vectorized, independent of the block cut); ``dim`` names the second axis (``site``,
+    ``bond``, ``species``...) and ``size`` its length.
+    """
+
+    dim: str
+    size: int
+    values: Callable[[int, int], np.ndarray]
+    meaning: str = ""
 
 
 class ExactResults(Protocol):
@@ -105,6 +129,25 @@ class Model(ABC):
     def warnings(self) -> list[str]:
         """Things a user should know before solving (ill-conditioning, ...)."""
         return []
+
+    def observables(self) -> dict[str, LinearObservable]:
+        """Linear observables whose stationary expectations are stored (name -> definition)."""
+        return {}
+
+
+def compress_stencil(
+    start: int, stop: int, columns: np.ndarray, values: np.ndarray,
+    present: np.ndarray | None,
+) -> RowBlock:
+    """Pack a fixed-width stencil ``[row, slot]`` into CSR pieces; ``present`` (None: every
+    entry) masks out the entries that do not exist."""
+    rows, width = columns.shape
+    if present is None or present.all():
+        indptr = np.arange(0, rows * width + 1, width, dtype=np.int64)
+        return RowBlock(start, stop, indptr, columns.reshape(-1), values.reshape(-1))
+    indptr = np.zeros(rows + 1, dtype=np.int64)
+    np.cumsum(np.count_nonzero(present, axis=1), out=indptr[1:])
+    return RowBlock(start, stop, indptr, columns[present], values[present])
 
 
 def validate_block(block: RowBlock, n_states: int) -> float:

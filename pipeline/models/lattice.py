@@ -25,6 +25,7 @@ import numpy as np
 
 from pipeline.errors import ModelError
 from pipeline.models.base import Model, RowBlock
+from pipeline.models.base import compress_stencil as _compress
 
 __all__ = ["LatticeWalk"]
 
@@ -349,21 +350,3 @@ def _edge_rows(start: int, stop: int, stride: int, size: int, high: bool) -> np.
     lengths = np.clip(np.minimum(run_starts + stride, stop) - lows, 0, None)
     ends = np.cumsum(lengths)
     return np.repeat(lows - start - (ends - lengths), lengths) + np.arange(ends[-1])
-
-
-def _compress(
-    start: int,
-    stop: int,
-    columns: np.ndarray,
-    values: np.ndarray,
-    present: np.ndarray | None,
-) -> RowBlock:
-    """Pack a fixed-width stencil into CSR pieces; ``present`` (None: every entry) masks out
-    the entries that do not exist."""
-    rows, width = columns.shape
-    if present is None or present.all():
-        indptr = np.arange(0, rows * width + 1, width, dtype=np.int64)
-        return RowBlock(start, stop, indptr, columns.reshape(-1), values.reshape(-1))
-    indptr = np.zeros(rows + 1, dtype=np.int64)
-    np.cumsum(np.count_nonzero(present, axis=1), out=indptr[1:])
-    return RowBlock(start, stop, indptr, columns[present], values[present])

@@ -6,6 +6,7 @@
 from __future__ import annotations
 
 import math
+from pathlib import Path
 
 from pipeline.stages.base import RunContext, StageOutput
 from pipeline.store import GroupData, Store
@@ -82,7 +83,16 @@ def model_line(model: dict) -> str:
         kinds = ", ".join(model.get("boundary", []))
         extra = " with disorder" if model.get("disorder") else ""
         return f"lattice {shape} ({kinds}){extra}"
-    return str(model.get("model", "?"))
+    kind = model.get("model")
+    if kind == "exclusion":
+        if model.get("boundary") == "periodic":
+            return f"exclusion ring L={model.get('sites')} N={model.get('particles')}"
+        return f"exclusion segment L={model.get('sites')}"
+    if kind == "reactions":
+        return f"reactions {'+'.join(model.get('species', []))} bounds {model.get('bounds')}"
+    if kind in ("network", "matrix"):
+        return f"{kind} {Path(str(model.get('file', '?'))).name}"
+    return str(kind or "?")
 
 
 def _number(value) -> str:

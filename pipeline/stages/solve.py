@@ -6,6 +6,7 @@ import time
 
 import numpy as np
 
+from pipeline.observables import stationary_expectations
 from pipeline.parallel import state_chunk, world
 from pipeline.progress import log, warn
 from pipeline.stages.base import RunContext, StageOutput
@@ -89,12 +90,19 @@ def run(ctx: RunContext) -> StageOutput:
     if modes.vectors is not None:
         spectrum.arrays["vectors"] = _state_array(modes.vectors, ("state", "mode"),
                                                   modes.vector_rows, operator.n_states)
+    if not operator.check.conserving and modes.values.size:
+        # 1^T W v_0 = lambda_0 1^T v_0: the slowest mode (the quasi-stationary state) loses
+        # probability at rate -Re lambda_0 per unit mass.
+        spectrum.attrs["quasi_stationary_outflow"] = float(-modes.values[0].real)
     groups = {"spectrum": spectrum}
     if settings.stationary and operator.check.conserving:
         result = backend.stationary(operator, dense_limit=settings.dense_limit)
+        observed = stationary_expectations(ctx.model, result.distribution, rows=result.rows)
         groups["stationary"] = GroupData(
             arrays={"distribution": _state_array(result.distribution, ("state",),
-                                                 result.rows, operator.n_states)},
+                                                 result.rows, operator.n_states),
+                    **{name: ArraySpec(values, (dim,)) for name, (dim, values, _) in
+                       observed.items()}},
             attrs={
                 "backend": backend.name,
                 "method": result.method,
@@ -103,6 +111,7 @@ def run(ctx: RunContext) -> StageOutput:
                 "sum": float(np.sum(result.distribution)),
                 "seconds": result.seconds,
                 "residual_definition": "||W p||_1 / ||W||_1, sum(p) = 1",
+                "observables": {name: meaning for name, (_, _, meaning) in observed.items()},
                 **result.info,
             },
         )

@@ -84,6 +84,14 @@ def run(ctx: RunContext) -> StageOutput:
             certified or matched,
         ))
     else:
+        known_gap = exact.gap() if exact is not None and hasattr(exact, "gap") else None
+        gap = spectral_gap(values, conserving)
+        if known_gap is not None and gap is not None and known_gap > 0:
+            # Only the gap is known exactly (not the rest of the slowest set).
+            relative = abs(gap - known_gap) / known_gap
+            checks.append(Check("spectrum.gap", "; ".join(exact.spectrum_sources), gap,
+                                known_gap, settings.gap_tolerance,
+                                relative <= settings.gap_tolerance))
         checks.append(Check(
             "spectrum.completeness",
             "certificate of the solver (no exact spectrum for this model)",
@@ -117,6 +125,15 @@ def run(ctx: RunContext) -> StageOutput:
             difference = _l1_difference(distribution, exact)
             source = "; ".join(exact.stationary_sources)
             checks.append(Check("stationary.exact", source, difference, 0.0, settings.tolerance,
+                                difference <= settings.tolerance))
+        known = exact.observables() if exact is not None and hasattr(exact, "observables") else {}
+        for name, reference in known.items():
+            if name not in stationary:
+                continue
+            stored = stationary[name][:]
+            difference = float(np.abs(stored - reference).max(initial=0.0)) / norm1
+            checks.append(Check(f"stationary.{name}", "; ".join(exact.observable_sources),
+                                difference, 0.0, settings.tolerance,
                                 difference <= settings.tolerance))
     passed = all(check.passed for check in checks)
     group = GroupData(attrs={"passed": passed, "checks": [c.as_dict() for c in checks],
