@@ -1,11 +1,12 @@
 """Config schema, parsing and validation: the one source of truth for config fields.
 
-A config is a TOML file with the tables ``[run]``, ``[model]``, ``[solve]``, ``[verify]`` and
-``[store]``. :data:`SCHEMA` declares every field (type, default, meaning); :func:`load_config`
-turns a file plus ``--set key=value`` overrides into a typed :class:`Config`, and every
-violation raises :class:`~pipeline.errors.ConfigError` with a one-line message that names the
-field, e.g. ``model.forward[1]: rate must be >= 0, got -2``. ``gapline schema`` prints the
-reference that README.md reproduces.
+A config is a TOML file with the tables ``[run]``, ``[model]``, ``[solve]``, ``[analyze]``,
+``[evolve]`` (optional: no table, no time evolution), ``[verify]`` and ``[store]``.
+:data:`SCHEMA` declares every field (type, default, meaning); :func:`load_config` turns a file
+plus ``--set key=value`` overrides into a typed :class:`Config`, and every violation raises
+:class:`~pipeline.errors.ConfigError` with a one-line message that names the field, e.g.
+``model.forward[1]: rate must be >= 0, got -2``. ``gapline schema`` prints the reference that
+README.md reproduces.
 """
 
 from __future__ import annotations
@@ -25,7 +26,9 @@ from pipeline.errors import ConfigError
 
 __all__ = [
     "SCHEMA",
+    "AnalyzeConfig",
     "Config",
+    "EvolveConfig",
     "DisorderConfig",
     "LatticeConfig",
     "RunConfig",
@@ -42,6 +45,8 @@ __all__ = [
 BOUNDARIES = ("periodic", "reflecting", "absorbing")
 BACKENDS = ("auto", "scipy", "slepc")
 METHODS = ("auto", "dense", "shift-invert")
+SYMMETRIZE = ("never", "auto", "always")
+CLOSED_CLASSES = ("per-class", "single")
 DISORDER_TARGETS = ("bonds", "sites")
 DISORDER_LAWS = ("uniform", "lognormal")
 MAX_DIMENSIONS = 8
@@ -106,6 +111,49 @@ SCHEMA: dict[str, dict[str, tuple[str, Any, str]]] = {
         ),
         "vectors": ("bool", False, "store right eigenvectors [state, mode]"),
         "stationary": ("bool", True, "compute the stationary distribution (conserving W only)"),
+        "symmetrize": (
+            "string",
+            "never",
+            "reversible chains: 'auto' solves the symmetric D^-1/2 W D^1/2 (real spectrum, "
+            "Lanczos) when detailed balance holds, 'always' requires it, 'never' keeps the "
+            "general path",
+        ),
+        "closed_classes": (
+            "string",
+            "per-class",
+            "several closed classes: 'per-class' stores one stationary law per class, "
+            "'single' makes that an error",
+        ),
+    },
+    "analyze": {
+        "start": (
+            "int or list of int",
+            None,
+            "start state of the mean absorption time (flat index or lattice coordinate); "
+            "the times from every state are stored anyway",
+        ),
+        "balance_tolerance": (
+            "float",
+            1e-10,
+            "detailed balance holds when max |J_ij| / max W_ij p_j is below this",
+        ),
+    },
+    "evolve": {
+        "start": (
+            "int, list of int or string",
+            REQUIRED,
+            "initial law: a flat state index, a lattice coordinate list, 'stationary' (the "
+            "stored result) or the path of a .npy file of probabilities",
+        ),
+        "times": ("list of float", None, "times (>= 0) at which p(t) is reported"),
+        "t_end": ("float", None, "instead of times: a uniform grid from 0 to t_end"),
+        "steps": ("int", 11, "points of the uniform grid (>= 2)"),
+        "full_limit": (
+            "int",
+            100000,
+            "p(t) [time, state] is stored up to this many states; above it only the "
+            "observables (total probability, mean and variance of each coordinate)",
+        ),
     },
     "verify": {
         "tolerance": (
@@ -162,6 +210,21 @@ class SolveConfig:
     max_search: int = 400
     vectors: bool = False
     stationary: bool = True
+    symmetrize: str = "never"
+    closed_classes: str = "per-class"
+
+
+@dataclass(frozen=True)
+class AnalyzeConfig:
+    start: int | tuple[int, ...] | None = None
+    balance_tolerance: float = 1e-10
+
+
+@dataclass(frozen=True)
+class EvolveConfig:
+    start: int | tuple[int, ...] | str
+    times: tuple[float, ...]
+    full_limit: int = 100000
 
 
 @dataclass(frozen=True)
@@ -185,6 +248,8 @@ class Config:
     solve: SolveConfig
     verify: VerifyConfig
     store: StoreConfig
+    analyze: AnalyzeConfig = field(default_factory=AnalyzeConfig)
+    evolve: EvolveConfig | None = None  # None: no [evolve] table, the stage records a skip
     source: str | None = None
     raw: dict[str, Any] = field(default_factory=dict, compare=False, repr=False)
 
@@ -297,7 +362,7 @@ def fingerprint(data: Any) -> str:
 def parse_config(raw: dict[str, Any], source: str | None = None) -> Config:
     """Validate a table tree (as read from TOML) into a :class:`Config`."""
     raw = copy.deepcopy(raw)
-    _reject_unknown(raw, ("run", "model", "solve", "verify", "store"), "")
+    _reject_unknown(raw, ("run", "model", "solve", "analyze", "evolve", "verify", "store"), "")
     run_table = _table(raw, "run")
     _reject_unknown(run_table, SCHEMA["run"], "run")
     name = run_table.get("name")
@@ -319,8 +384,12 @@ def parse_config(raw: dict[str, Any], source: str | None = None) -> Config:
     store_table = _table(raw, "store")
     _reject_unknown(store_table, SCHEMA["store"], "store")
     store = StoreConfig(path=_string(store_table.get("path", StoreConfig.path), "store.path"))
-    return Config(run=run, model=model, solve=solve, verify=verify, store=store, source=source,
-                  raw=raw)
+    from pipeline.config_analysis import parse_analyze, parse_evolve
+
+    analyze = parse_analyze(_table(raw, "analyze"))
+    evolve = parse_evolve(_table(raw, "evolve")) if "evolve" in raw else None
+    return Config(run=run, model=model, solve=solve, verify=verify, store=store,
+                  analyze=analyze, evolve=evolve, source=source, raw=raw)
 
 
 def _parse_model(table: dict[str, Any]) -> LatticeConfig:
@@ -440,6 +509,10 @@ def _parse_solve(table: dict[str, Any]) -> SolveConfig:
         max_search=max_search,
         vectors=_boolean(table.get("vectors", defaults.vectors), "solve.vectors"),
         stationary=_boolean(table.get("stationary", defaults.stationary), "solve.stationary"),
+        symmetrize=_choice(table.get("symmetrize", defaults.symmetrize), SYMMETRIZE,
+                           "solve.symmetrize"),
+        closed_classes=_choice(table.get("closed_classes", defaults.closed_classes),
+                               CLOSED_CLASSES, "solve.closed_classes"),
     )
 
 

@@ -18,6 +18,27 @@ Layout (README.md, "Store layout", reproduces this)::
         spectrum/vectors                complex128 [state, mode]   (solve.vectors = true)
         stationary/distribution         float64    [state]  (conserving generators); attrs:
                                           method, residual, negative_mass, error_estimate
+        stationary/class_distributions  float64    [class, state]  instead, when W has several
+                                          closed classes (zero outside each class)
+        stationary/class_labels         int64      [class]  class label of each row
+        analysis/class_of_state         int64      [state]  communicating class of each state
+        analysis/class_closed           bool       [class]  no transition leaves the class
+        analysis/channel_flux           float64    [channel]  sum of W_ij p_j per channel
+        analysis/channel_current        float64    [channel]  sum of J_ij = W_ij p_j - W_ji p_i
+        analysis/drift                  float64    [axis]   mean velocity (lattice)
+        analysis/quasi_stationary       float64    [state]  (sub-generators), and
+        analysis/mean_absorption_time   float64    [state]  tau with W^T tau = -1
+        analysis/splitting              float64    [state, exit]  exit probabilities; attrs:
+                                          relaxation {gap, relaxation_time, period,
+                                          separation, resolved}, classes, currents
+                                          {channels, entropy_production, balance_defect,
+                                          detailed_balance}, absorption {escape_rate, ...}
+        evolution/time                  float64    [time]   attrs: requested (false: no
+                                          [evolve] table, nothing else), start, method,
+                                          conservation_defect, negative_mass
+        evolution/probability           float64    [time, state]  (n_states <= full_limit)
+        evolution/total_probability     float64    [time]
+        evolution/mean_coordinate       float64    [time, axis]   (and variance_coordinate)
         verify/                         attrs: passed (bool), checks (list of {name, source,
                                           value, reference, tolerance, passed})
         report/                         attrs: summary (text)
@@ -65,6 +86,8 @@ LAYOUT_VERSION = 1
 STAGE_GROUPS: dict[str, tuple[str, ...]] = {
     "assemble": ("assemble",),
     "solve": ("spectrum", "stationary"),
+    "analyze": ("analysis",),
+    "evolve": ("evolution",),
     "verify": ("verify",),
     "report": ("report",),
 }
