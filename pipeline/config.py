@@ -154,6 +154,12 @@ SCHEMA: dict[str, dict[str, tuple[str, Any, str]]] = {
             "p(t) [time, state] is stored up to this many states; above it only the "
             "observables (total probability, mean and variance of each coordinate)",
         ),
+        "modes": (
+            "int",
+            0,
+            "also the mode expansion sum_k e^(lambda_k t) r_k (l_k . p0) over this many "
+            "slowest modes (0: off), compared with the Krylov result at each time",
+        ),
     },
     "verify": {
         "tolerance": (
@@ -225,6 +231,7 @@ class EvolveConfig:
     start: int | tuple[int, ...] | str
     times: tuple[float, ...]
     full_limit: int = 100000
+    modes: int = 0
 
 
 @dataclass(frozen=True)

@@ -86,4 +86,7 @@ def parse_evolve(table: dict[str, Any]) -> EvolveConfig:
                      "evolve.full_limit")
     if limit < 0:
         raise ConfigError(f"evolve.full_limit: must be >= 0, got {limit}")
-    return EvolveConfig(start=start, times=tuple(times), full_limit=limit)
+    modes = _integer(table.get("modes", 0), "evolve.modes")
+    if modes < 0:
+        raise ConfigError(f"evolve.modes: must be >= 0 (0: no mode expansion), got {modes}")
+    return EvolveConfig(start=start, times=tuple(times), full_limit=limit, modes=modes)

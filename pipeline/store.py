@@ -39,6 +39,8 @@ Layout (README.md, "Store layout", reproduces this)::
         evolution/probability           float64    [time, state]  (n_states <= full_limit)
         evolution/total_probability     float64    [time]
         evolution/mean_coordinate       float64    [time, axis]   (and variance_coordinate)
+        evolution/mode_expansion        float64    [time, state]  (evolve.modes > 0), and
+        evolution/mode_expansion_difference  float64  [time]  sum |p_modes - p_krylov|
         verify/                         attrs: passed (bool), checks (list of {name, source,
                                           value, reference, tolerance, passed})
         report/                         attrs: summary (text)

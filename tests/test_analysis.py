@@ -355,3 +355,28 @@ def test_symmetrized_solve_of_a_strongly_biased_chain_is_accurate(backend):
     np.testing.assert_allclose(modes.values.real, exact, atol=1e-13)
     assert modes.error_estimates.max() < 1e-12
     assert modes.info["skew_bound"] < 1e-13
+
+
+@pytest.mark.parametrize("dense_limit", [4096, 0])
+def test_mode_expansion_matches_krylov_and_dense_expm(backend, dense_limit):
+    # p(t) = sum_k e^{lambda_k t} r_k (l_k . p0): with every mode (dense) it is exp(tW) p0
+    # (scipy.linalg.expm of the dense W, Higham 2005 scaling and squaring); with the slowest
+    # few it converges at long times, the error decaying like e^{Re lambda_count t}.
+    model = LatticeWalk((12, 5), ("periodic", "reflecting"), (1.2, 0.7), (0.5, 0.9))
+    operator = backend.assemble(model)
+    n = model.n_states
+    start = np.zeros(n)
+    start[7] = 1.0
+    times = np.array([0.0, 0.4, 3.0])
+    dense = np.array([scipy.linalg.expm(t * operator.handle["W"].toarray()) @ start
+                      for t in times])
+    krylov = backend.evolve(operator, start, times)
+    np.testing.assert_allclose(krylov, dense, atol=1e-12)
+    if dense_limit:
+        full, _ = backend.mode_expansion(operator, n, start, times, dense_limit=dense_limit)
+        np.testing.assert_allclose(full, dense, atol=1e-9)
+    late = np.array([200.0])
+    few, used = backend.mode_expansion(operator, 6, start, late, dense_limit=dense_limit)
+    exact = scipy.linalg.expm(late[0] * operator.handle["W"].toarray()) @ start
+    bound = 10 * math.exp(used[-1].real * late[0])
+    assert np.abs(few[0] - exact).sum() < max(bound, 1e-9)

@@ -254,3 +254,23 @@ def test_show_prints_gap_relaxation_currents_entropy(tmp_path):
     for text in ("relaxation: gap", "relaxation time", "currents per channel: axis0+ 0.9",
                  "entropy production", "detailed balance fails"):
         assert text in shown, shown
+
+
+def test_evolve_mode_expansion_with_every_mode_equals_krylov(tmp_path, quiet):
+    # With all 40 modes the expansion is exact (eigendecomposition of a diagonalizable W;
+    # the ring is normal), so both methods must agree at every time.
+    extra = EVOLVE.format(start="5", times="times = [0.0, 1.0, 4.0]\nmodes = 40")
+    store = tmp_path / "s.zarr"
+    run_pipeline(load_config(ring_config(tmp_path, extra=extra)), store_path=str(store))
+    group = zarr.open_group(str(store), mode="r")["ring"]["evolution"]
+    assert group.attrs["mode_expansion_modes"] == 40
+    assert group["mode_expansion_difference"][:].max() < 1e-10
+    np.testing.assert_allclose(group["mode_expansion"][:], group["probability"][:], atol=1e-11)
+
+
+def test_new_shipped_configs_run_and_verify(tmp_path, quiet):
+    from .conftest import CONFIGS
+
+    for name in ("drone-corridor-absorption.toml", "tracer-canal-evolution.toml"):
+        outcome = run_pipeline(load_config(CONFIGS / name), store_path=str(tmp_path / "s.zarr"))
+        assert outcome.verified is True, name

@@ -212,6 +212,15 @@ class Backend(ABC):
         """``p(t) = exp(t W) start`` at sorted ``times >= 0``, float64 ``[time, state]``."""
         raise self._unsupported("time evolution")
 
+    def mode_expansion(self, operator: Operator, count: int, start: np.ndarray,
+                       times: np.ndarray, dense_limit: int = 1024) -> tuple[np.ndarray,
+                                                                           np.ndarray]:
+        """``sum_k e^{lambda_k t} r_k (l_k^H p0) / (l_k^H r_k)`` over the ``count`` slowest
+        modes (right ``r``, left ``l``), real part, float64 ``[time, state]``, and the
+        eigenvalues used ``[mode]``. Exact when ``count = n_states``, else accurate once
+        ``e^{Re lambda_count t}`` is small."""
+        raise self._unsupported("the mode expansion")
+
     def symmetric_slowest_modes(self, operator: Operator, count: int, *,
                                 tolerance: float = 1e-12, vectors: bool = False,
                                 dense_limit: int = 1024) -> Modes:

@@ -139,6 +139,32 @@ class ScipyAnalysis:
             result[index] = current
         return result
 
+    def mode_expansion(self, operator: Operator, count: int, start: np.ndarray,
+                       times: np.ndarray, dense_limit: int = 1024) -> tuple[np.ndarray,
+                                                                           np.ndarray]:
+        from pipeline.modes import grouping_tolerance, take_slowest
+
+        W = operator.handle["W"]
+        n = operator.n_states
+        count = min(count, n)
+        if n <= dense_limit:
+            values, left, right = scipy.linalg.eig(W.toarray(), left=True, right=True)
+            chosen, _ = take_slowest(values, count,
+                                     grouping_tolerance(values, operator.check.norm1))
+            values, left, right = values[chosen], left[:, chosen], right[:, chosen]
+        else:
+            modes = self.slowest_modes(operator, count, method="shift-invert", vectors=True,
+                                       dense_limit=dense_limit)
+            values, right = modes.values, modes.vectors
+            left_values, left_all = self._left_modes(operator, int(modes.info["searched"]),
+                                                     1e-12)
+            nearest = np.argmin(np.abs(left_values[None, :] - values[:, None]), axis=1)
+            left = left_all[:, nearest]
+        pairing = np.einsum("ij,ij->j", left.conj(), right)
+        weights = (left.conj().T @ np.asarray(start, dtype=np.float64)) / pairing
+        growth = np.exp(np.outer(np.asarray(times, dtype=np.float64), values))
+        return np.real((growth * weights[None, :]) @ right.T), values
+
     def symmetric_slowest_modes(self, operator: Operator, count: int, *,
                                 tolerance: float = 1e-12,
                                 vectors: bool = False, dense_limit: int = 1024) -> Modes:

@@ -4,7 +4,9 @@ Without an ``[evolve]`` table the stage commits an ``evolution`` group that says
 (``requested = false``) and computes nothing, so a full run stays complete and a later
 config with the table reruns just this stage. ``p(t)`` is stored on a ``time`` axis up to
 ``evolve.full_limit`` states; the observables (total probability, mean and variance of each
-coordinate) always.
+coordinate) always. With ``evolve.modes = k`` the mode expansion over the ``k`` slowest modes
+(left and right eigenvectors) is stored too, with its L1 distance to the Krylov result at each
+time: a check of both (they agree once the neglected modes have decayed).
 """
 
 from __future__ import annotations
@@ -51,6 +53,16 @@ def run(ctx: RunContext) -> StageOutput:
     for name in ("mean_coordinate", "variance_coordinate"):
         if name in moments:
             arrays[name] = ArraySpec(moments[name], ("time", "axis"))
+    expansion_attrs: dict[str, Any] = {}
+    if settings.modes:
+        expanded, used = ctx.backend.mode_expansion(operator, settings.modes, p0, times,
+                                                    dense_limit=ctx.config.solve.dense_limit)
+        difference = np.abs(expanded - laws).sum(axis=1)
+        arrays["mode_expansion_difference"] = ArraySpec(difference, ("time",))
+        expansion_attrs = {"mode_expansion_modes": int(used.size),
+                           "mode_expansion_definition": "sum_x |p_modes(t) - p_krylov(t)|"}
+        if n <= settings.full_limit:
+            arrays["mode_expansion"] = ArraySpec(expanded, ("time", "state"))
     full = n <= settings.full_limit
     if full:
         arrays["probability"] = ArraySpec(laws, ("time", "state"))
@@ -71,6 +83,7 @@ def run(ctx: RunContext) -> StageOutput:
                                     "total probability between times (sub-generator)"),
         "negative_mass": float(-np.minimum(laws, 0.0).sum(axis=1).max(initial=0.0)),
         "seconds": time.perf_counter() - started,
+        **expansion_attrs,
     }
     log(f"evolve: {times.size} times, conservation defect {conservation:.1e}")
     return StageOutput({"evolution": GroupData(arrays=arrays, attrs=attrs)},
