@@ -26,6 +26,8 @@ Layout (README.md, "Store layout", reproduces this)::
         analysis/channel_flux           float64    [channel]  sum of W_ij p_j per channel
         analysis/channel_current        float64    [channel]  sum of J_ij = W_ij p_j - W_ji p_i
         analysis/drift                  float64    [axis]   mean velocity (lattice)
+        analysis/class_channel_current  float64    [class, channel]  with several closed
+                                          classes (and class_channel_flux)
         analysis/quasi_stationary       float64    [state]  (sub-generators), and
         analysis/mean_absorption_time   float64    [state]  tau with W^T tau = -1
         analysis/splitting              float64    [state, exit]  exit probabilities; attrs:

@@ -380,3 +380,16 @@ def test_mode_expansion_matches_krylov_and_dense_expm(backend, dense_limit):
     exact = scipy.linalg.expm(late[0] * operator.handle["W"].toarray()) @ start
     bound = 10 * math.exp(used[-1].real * late[0])
     assert np.abs(few[0] - exact).sum() < max(bound, 1e-9)
+
+
+def test_absorption_solve_reuses_the_eigensolver_lu(backend):
+    # After a shift-invert solve the transposed solves refine with the LU of W - sigma I;
+    # the result must still be the gambler's-ruin time x (L + 1 - x) / (u + v)
+    # (Feller 1968, vol. 1, XIV.3).
+    size, rate = 301, 0.5
+    operator = backend.assemble(chain(size, "absorbing", rate, rate))
+    backend.slowest_modes(operator, 3, method="shift-invert")
+    tau, residual = backend.solve_transposed(operator, -np.ones(size))
+    x = np.arange(1, size + 1)
+    np.testing.assert_allclose(tau, x * (size + 1 - x) / (2 * rate), rtol=1e-10)
+    assert residual[0] < 1e-13

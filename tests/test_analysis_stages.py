@@ -274,3 +274,26 @@ def test_new_shipped_configs_run_and_verify(tmp_path, quiet):
     for name in ("drone-corridor-absorption.toml", "tracer-canal-evolution.toml"):
         outcome = run_pipeline(load_config(CONFIGS / name), store_path=str(tmp_path / "s.zarr"))
         assert outcome.verified is True, name
+
+
+def test_currents_under_each_closed_class(tmp_path, quiet):
+    # Two-state class {3, 4}: every two-state chain is reversible (Kelly 1979, 1.5), so no
+    # current; the cycle 0 -> 1 -> 2 -> 0 has one-way hops 1 -> 2 and 2 -> 0, so its entropy
+    # production is infinite (Schnakenberg 1976: ln of a zero reverse flux).
+    from pipeline.stages import analyze as analyze_stage
+
+    ctx = _solve_context(tmp_path, "per-class")
+    output = solve_stage.run(ctx)
+    ctx.store.open_run(ctx.run, {})
+    ctx.store.write_stage(ctx.run, "solve", output.groups, "test-print")
+    attrs = analyze_stage.run(ctx).groups["analysis"].attrs
+    by_states = {}
+    labels = np.asarray(output.groups["stationary"].arrays["class_labels"].data)
+    laws = output.groups["stationary"].arrays["class_distributions"].data
+    for entry, row in zip(attrs["currents"]["per_class"], laws, strict=True):
+        by_states[tuple(np.flatnonzero(row > 0))] = entry
+    assert [e["class"] for e in attrs["currents"]["per_class"]] == labels.tolist()
+    assert by_states[(3, 4)]["detailed_balance"] is True
+    assert by_states[(3, 4)]["entropy_production"] == pytest.approx(0.0, abs=1e-15)
+    assert by_states[(0, 1, 2)]["entropy_production"] == math.inf
+    assert by_states[(0, 1, 2)]["detailed_balance"] is False

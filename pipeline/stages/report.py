@@ -107,6 +107,10 @@ def analysis_lines(store: Store, run: str) -> list[str]:
             lines.append(f"  entropy production {currents['entropy_production']:.10g} per unit "
                          f"time; detailed balance {verdict} (defect "
                          f"{currents['balance_defect']:.2e})")
+        for entry in currents.get("per_class", []):
+            verdict = "holds" if entry["detailed_balance"] else "fails"
+            lines.append(f"  closed class {entry['class']}: entropy production "
+                         f"{entry['entropy_production']:.10g}; detailed balance {verdict}")
         absorption = a.get("absorption")
         if absorption:
             lines.append(f"  absorption: escape rate {_number(absorption['escape_rate'])}, "
