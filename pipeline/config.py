@@ -1,11 +1,12 @@
 """Config schema, parsing and validation: the one source of truth for config fields.
 
-A config is a TOML file with the tables ``[run]``, ``[model]``, ``[solve]``, ``[verify]`` and
-``[store]``. :data:`SCHEMA` declares every field (type, default, meaning); :func:`load_config`
-turns a file plus ``--set key=value`` overrides into a typed :class:`Config`, and every
-violation raises :class:`~pipeline.errors.ConfigError` with a one-line message that names the
-field, e.g. ``model.forward[1]: rate must be >= 0, got -2``. ``gapline schema`` prints the
-reference that README.md reproduces.
+A config is a TOML file with the tables ``[run]``, ``[model]``, ``[solve]``, ``[analyze]``,
+``[evolve]`` (optional: no table, no time evolution), ``[verify]`` and ``[store]``.
+:data:`SCHEMA` declares every field (type, default, meaning); :func:`load_config` turns a file
+plus ``--set key=value`` overrides into a typed :class:`Config`, and every violation raises
+:class:`~pipeline.errors.ConfigError` with a one-line message that names the field, e.g.
+``model.forward[1]: rate must be >= 0, got -2``. ``gapline schema`` prints the reference that
+README.md reproduces.
 """
 
 from __future__ import annotations
@@ -25,7 +26,9 @@ from pipeline.errors import ConfigError
 
 __all__ = [
     "SCHEMA",
+    "AnalyzeConfig",
     "Config",
+    "EvolveConfig",
     "DisorderConfig",
     "ExclusionConfig",
     "LatticeConfig",
@@ -54,6 +57,8 @@ METHODS = ("auto", "dense", "shift-invert", "krylov")
 INNER_SOLVERS = ("direct", "iterative")
 PRECONDITIONERS = ("auto", "bjacobi", "asm", "gamg", "hypre")
 PETSC_OPTION = re.compile(r"[A-Za-z][A-Za-z0-9_]*")
+SYMMETRIZE = ("never", "auto", "always")
+CLOSED_CLASSES = ("per-class", "single")
 DISORDER_TARGETS = ("bonds", "sites")
 DISORDER_LAWS = ("uniform", "lognormal")
 MAX_DIMENSIONS = 8
@@ -258,6 +263,55 @@ SCHEMA: dict[str, dict[str, tuple[str, Any, str]]] = {
             "expert: PETSc options database entries (name without '-' = value), applied "
             "after gapline's settings, e.g. eps_ncv = 128, st_mat_mumps_icntl_14 = 50",
         ),
+        "symmetrize": (
+            "string",
+            "never",
+            "reversible chains: 'auto' solves the symmetric D^-1/2 W D^1/2 (real spectrum, "
+            "Lanczos) when detailed balance holds, 'always' requires it, 'never' keeps the "
+            "general path",
+        ),
+        "closed_classes": (
+            "string",
+            "per-class",
+            "several closed classes: 'per-class' stores one stationary law per class, "
+            "'single' makes that an error",
+        ),
+    },
+    "analyze": {
+        "start": (
+            "int or list of int",
+            None,
+            "start state of the mean absorption time (flat index or lattice coordinate); "
+            "the times from every state are stored anyway",
+        ),
+        "balance_tolerance": (
+            "float",
+            1e-10,
+            "detailed balance holds when max |J_ij| / max W_ij p_j is below this",
+        ),
+    },
+    "evolve": {
+        "start": (
+            "int, list of int or string",
+            REQUIRED,
+            "initial law: a flat state index, a lattice coordinate list, 'stationary' (the "
+            "stored result) or the path of a .npy file of probabilities",
+        ),
+        "times": ("list of float", None, "times (>= 0) at which p(t) is reported"),
+        "t_end": ("float", None, "instead of times: a uniform grid from 0 to t_end"),
+        "steps": ("int", 11, "points of the uniform grid (>= 2)"),
+        "full_limit": (
+            "int",
+            100000,
+            "p(t) [time, state] is stored up to this many states; above it only the "
+            "observables (total probability, mean and variance of each coordinate)",
+        ),
+        "modes": (
+            "int",
+            0,
+            "also the mode expansion sum_k e^(lambda_k t) r_k (l_k . p0) over this many "
+            "slowest modes (0: off), compared with the Krylov result at each time",
+        ),
     },
     "verify": {
         "tolerance": (
@@ -421,6 +475,22 @@ class SolveConfig:
     preconditioner: str = "auto"
     inner_tolerance: float = 1e-12
     petsc: dict[str, Any] = field(default_factory=dict)
+    symmetrize: str = "never"
+    closed_classes: str = "per-class"
+
+
+@dataclass(frozen=True)
+class AnalyzeConfig:
+    start: int | tuple[int, ...] | None = None
+    balance_tolerance: float = 1e-10
+
+
+@dataclass(frozen=True)
+class EvolveConfig:
+    start: int | tuple[int, ...] | str
+    times: tuple[float, ...]
+    full_limit: int = 100000
+    modes: int = 0
 
 
 @dataclass(frozen=True)
@@ -468,6 +538,8 @@ class Config:
     store: StoreConfig
     sweep: SweepConfig | None = None
     cluster: ClusterConfig = field(default_factory=ClusterConfig)
+    analyze: AnalyzeConfig = field(default_factory=AnalyzeConfig)
+    evolve: EvolveConfig | None = None  # None: no [evolve] table, the stage records a skip
     source: str | None = None
     raw: dict[str, Any] = field(default_factory=dict, compare=False, repr=False)
 
@@ -590,7 +662,8 @@ def fingerprint(data: Any) -> str:
 def parse_config(raw: dict[str, Any], source: str | None = None) -> Config:
     """Validate a table tree (as read from TOML) into a :class:`Config`."""
     raw = copy.deepcopy(raw)
-    _reject_unknown(raw, ("run", "model", "solve", "verify", "store", "sweep", "cluster"), "")
+    _reject_unknown(raw, ("run", "model", "solve", "analyze", "evolve", "verify", "store",
+                          "sweep", "cluster"), "")
     run_table = _table(raw, "run")
     _reject_unknown(run_table, SCHEMA["run"], "run")
     name = run_table.get("name")
@@ -616,8 +689,12 @@ def parse_config(raw: dict[str, Any], source: str | None = None) -> Config:
                                         "store.matrix"))
     sweep = _parse_sweep(raw["sweep"], name) if "sweep" in raw else None
     cluster = _parse_cluster(_table(raw, "cluster"))
+    from pipeline.config_analysis import parse_analyze, parse_evolve
+
+    analyze = parse_analyze(_table(raw, "analyze"))
+    evolve = parse_evolve(_table(raw, "evolve")) if "evolve" in raw else None
     return Config(run=run, model=model, solve=solve, verify=verify, store=store, sweep=sweep,
-                  cluster=cluster, source=source, raw=raw)
+                  cluster=cluster, analyze=analyze, evolve=evolve, source=source, raw=raw)
 
 
 def _parse_sweep(table: Any, run_name: str) -> SweepConfig:
@@ -815,6 +892,10 @@ def _parse_solve(table: dict[str, Any]) -> SolveConfig:
                                PRECONDITIONERS, "solve.preconditioner"),
         inner_tolerance=_inner_tolerance(table.get("inner_tolerance", defaults.inner_tolerance)),
         petsc=_petsc_options(table.get("petsc", {})),
+        symmetrize=_choice(table.get("symmetrize", defaults.symmetrize), SYMMETRIZE,
+                           "solve.symmetrize"),
+        closed_classes=_choice(table.get("closed_classes", defaults.closed_classes),
+                               CLOSED_CLASSES, "solve.closed_classes"),
     )
 
 

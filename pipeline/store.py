@@ -35,6 +35,31 @@ Layout (README.md, "Store layout", reproduces this)::
                                           for the model's observables (exclusion: density
                                           [site], current [bond]; reactions: mean_counts
                                           [species], outflow [outflow_total])
+        stationary/class_distributions  float64    [class, state]  instead, when W has several
+                                          closed classes (zero outside each class)
+        stationary/class_labels         int64      [class]  class label of each row
+        analysis/class_of_state         int64      [state]  communicating class of each state
+        analysis/class_closed           bool       [class]  no transition leaves the class
+        analysis/channel_flux           float64    [channel]  sum of W_ij p_j per channel
+        analysis/channel_current        float64    [channel]  sum of J_ij = W_ij p_j - W_ji p_i
+        analysis/drift                  float64    [axis]   mean velocity (lattice)
+        analysis/class_channel_current  float64    [class, channel]  with several closed
+                                          classes (and class_channel_flux)
+        analysis/quasi_stationary       float64    [state]  (sub-generators), and
+        analysis/mean_absorption_time   float64    [state]  tau with W^T tau = -1
+        analysis/splitting              float64    [state, exit]  exit probabilities; attrs:
+                                          relaxation {gap, relaxation_time, period,
+                                          separation, resolved}, classes, currents
+                                          {channels, entropy_production, balance_defect,
+                                          detailed_balance}, absorption {escape_rate, ...}
+        evolution/time                  float64    [time]   attrs: requested (false: no
+                                          [evolve] table, nothing else), start, method,
+                                          conservation_defect, negative_mass
+        evolution/probability           float64    [time, state]  (n_states <= full_limit)
+        evolution/total_probability     float64    [time]
+        evolution/mean_coordinate       float64    [time, axis]   (and variance_coordinate)
+        evolution/mode_expansion        float64    [time, state]  (evolve.modes > 0), and
+        evolution/mode_expansion_difference  float64  [time]  sum |p_modes - p_krylov|
         verify/                         attrs: passed (bool), checks (list of {name, source,
                                           value, reference, tolerance, passed})
         report/                         attrs: summary (text)
@@ -93,6 +118,8 @@ LAYOUT_VERSION = 1
 STAGE_GROUPS: dict[str, tuple[str, ...]] = {
     "assemble": ("assemble", "matrix"),
     "solve": ("spectrum", "stationary"),
+    "analyze": ("analysis",),
+    "evolve": ("evolution",),
     "verify": ("verify",),
     "report": ("report",),
 }

@@ -74,8 +74,8 @@ def test_layout(tmp_path, store_path, quiet):
     assert attrs["config"]["solve"]["modes"] == 5
     assert attrs["config"]["model"]["size"] == [SIZE]
     assert {"numpy", "scipy", "zarr", "gapline"} <= set(attrs["versions"])
-    assert set(attrs["timings"]) == {"assemble", "solve", "verify", "report"}
-    assert set(attrs["stages"]) == {"assemble", "solve", "verify", "report"}
+    assert set(attrs["timings"]) == {"assemble", "solve", "analyze", "evolve", "verify", "report"}
+    assert set(attrs["stages"]) == {"assemble", "solve", "analyze", "evolve", "verify", "report"}
     for stage, record in attrs["stages"].items():
         assert record["fingerprint"], stage
     for group in ("assemble", "spectrum", "stationary", "verify", "report"):
@@ -249,7 +249,7 @@ def test_from_solve_reuses_assembly(tmp_path, store_path, quiet):
     _run(tmp_path, store_path, modes=5)
     assemble_record = Store(store_path).stage_record(RUN, "assemble")
     outcome = _run(tmp_path, store_path, modes=9, start="solve")
-    assert outcome.stages_run == ["solve", "verify", "report"]
+    assert outcome.stages_run == ["solve", "analyze", "evolve", "verify", "report"]
     assert outcome.verified is True
     assert Store(store_path).stage_record(RUN, "assemble") == assemble_record
     W, values = _ring_reference()

@@ -17,11 +17,13 @@ from typing import Any, ClassVar
 
 import numpy as np
 
-from pipeline.errors import ModelError
+from pipeline.errors import BackendError, ModelError
 from pipeline.models.base import BLOCK_TOLERANCE, Model
 
 __all__ = [
     "Backend",
+    "Classes",
+    "Currents",
     "GeneratorCheck",
     "Modes",
     "Operator",
@@ -105,6 +107,51 @@ class Stationary:
     rows: tuple[int, int] | None = None
 
 
+@dataclass
+class Currents:
+    """Stationary probability flows of ``W`` under a distribution ``p``.
+
+    With the flux ``F_ij = W_ij p_j`` (probability per unit time going ``j -> i``) and the net
+    current ``J_ij = F_ij - F_ji``, summed over the off-diagonal entries of each channel
+    (:meth:`~pipeline.models.base.Model.transition_channels`):
+
+    channel_flux : float64 ``[channel]``, sum of ``F_ij``.
+    channel_current : float64 ``[channel]``, sum of ``J_ij`` (a pair counts in both its
+        channels with opposite signs).
+    entropy_production : ``1/2 sum_{i != j} J_ij ln(F_ij / F_ji)`` per unit time
+        (Schnakenberg 1976, Rev. Mod. Phys. 48, 571, eq. 7.6); ``inf`` when a transition
+        carries flux whose reverse does not exist.
+    max_flux : ``max F_ij``; max_current : ``max |J_ij|``; the detailed-balance defect is
+        their ratio (0 when ``W`` is reversible under ``p``).
+    """
+
+    channel_flux: np.ndarray
+    channel_current: np.ndarray
+    entropy_production: float
+    max_flux: float
+    max_current: float
+
+    @property
+    def balance_defect(self) -> float:
+        return self.max_current / self.max_flux if self.max_flux > 0 else 0.0
+
+
+@dataclass
+class Classes:
+    """Communicating classes (strongly connected components of the transition graph).
+
+    labels : int64 ``[state]``, class of each state (0..count-1).
+    closed : bool ``[class]``, no transition (and no leak) leaves the class.
+    """
+
+    labels: np.ndarray
+    closed: np.ndarray
+
+    @property
+    def count(self) -> int:
+        return int(self.closed.size)
+
+
 class Backend(ABC):
     """A numerical engine. Subclasses set ``name`` and ``description``."""
 
@@ -140,6 +187,58 @@ class Backend(ABC):
     @abstractmethod
     def stationary(self, operator: Operator, dense_limit: int = 1024) -> Stationary:
         """The stationary distribution of a conserving generator."""
+
+    # -- analysis operations: default implementations refuse (see DEVELOPERS.md) --------
+
+    def _unsupported(self, what: str) -> BackendError:
+        return BackendError(f"backend {self.name} does not support {what} yet; use "
+                            "solve.backend = 'scipy'")
+
+    def currents(self, operator: Operator, distribution: np.ndarray) -> Currents:
+        """Fluxes, net currents per channel and entropy production under ``distribution``
+        (float64 ``[state]``, sum 1)."""
+        raise self._unsupported("currents")
+
+    def communicating_classes(self, operator: Operator) -> Classes:
+        """Strongly connected components of the graph ``j -> i`` for ``W[i, j] > 0``."""
+        raise self._unsupported("communicating classes")
+
+    def class_stationary(self, operator: Operator, states: np.ndarray,
+                         dense_limit: int = 1024) -> Stationary:
+        """Stationary law of ``W`` restricted to a closed class ``states`` (int64 indices);
+        the distribution is over those states, in that order."""
+        raise self._unsupported("stationary laws of closed classes")
+
+    def solve_transposed(self, operator: Operator,
+                         rhs: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """``X`` with ``W^T X = rhs`` (float64 ``[state]`` or ``[state, k]``) and the relative
+        residual ``||W^T x - b||_inf / (||W||_1 ||x||_inf + ||b||_inf)`` per column ``[k]``;
+        used for mean absorption times (``rhs = -1``) and splitting probabilities (``rhs =
+        -exit rates``). Raises SolverError when ``W^T`` is singular."""
+        raise self._unsupported("linear solves with W^T")
+
+    def evolve(self, operator: Operator, start: np.ndarray, times: np.ndarray) -> np.ndarray:
+        """``p(t) = exp(t W) start`` at sorted ``times >= 0``, float64 ``[time, state]``."""
+        raise self._unsupported("time evolution")
+
+    def mode_expansion(self, operator: Operator, count: int, start: np.ndarray,
+                       times: np.ndarray, dense_limit: int = 1024) -> tuple[np.ndarray,
+                                                                           np.ndarray]:
+        """``sum_k e^{lambda_k t} r_k (l_k^H p0) / (l_k^H r_k)`` over the ``count`` slowest
+        modes (right ``r``, left ``l``), real part, float64 ``[time, state]``, and the
+        eigenvalues used ``[mode]``. Exact when ``count = n_states``, else accurate once
+        ``e^{Re lambda_count t}`` is small."""
+        raise self._unsupported("the mode expansion")
+
+    def symmetric_slowest_modes(self, operator: Operator, count: int, *,
+                                tolerance: float = 1e-12, vectors: bool = False,
+                                dense_limit: int = 1024) -> Modes:
+        """Slowest modes of a reversible irreducible ``W`` from the symmetric
+        ``S = D^{-1/2} W D^{1/2}`` (``D = diag(p)``, ``p`` from detailed balance along a
+        spanning tree): real eigenvalues, vectors of ``W``; error estimates are
+        ``||S s - lambda s|| + ||(S - S^T)/2||_1`` (the skew part is 0 for a reversible
+        chain, up to rounding)."""
+        raise self._unsupported("the symmetrized solve of reversible chains")
 
 
 def check_column_sums(

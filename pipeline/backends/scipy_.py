@@ -35,6 +35,7 @@ import scipy.sparse.linalg as spla
 from pipeline.backends.base import Backend, Modes, Operator, Stationary, check_column_sums
 from pipeline.backends.completeness import SpectrumEnclosure, farthest_enclosed_distance
 from pipeline.backends.conditioning import eigenvalue_conditions
+from pipeline.backends.scipy_analysis import ScipyAnalysis
 from pipeline.errors import BackendError, ModelError, SolverError
 from pipeline.models.base import Model, validate_block
 from pipeline.modes import grouping_tolerance, take_slowest
@@ -60,7 +61,7 @@ def mpi_world_size() -> int:
     return 1
 
 
-class ScipyBackend(Backend):
+class ScipyBackend(ScipyAnalysis, Backend):
     name = "scipy"
     description = "one process: scipy.sparse, SuperLU, ARPACK; LAPACK for small problems"
     # Rows per block: small enough for a block's arrays to stay in cache and be reused by

@@ -833,6 +833,117 @@ class SlepcBackend(Backend):
         return (left_values, np.conj(left) * scaling[:, None],
                 "Krylov–Schur on W^T with transposed solves (the right vectors did not fit)")
 
+    # -- analysis (the analyze and evolve stages) -----------------------------------------
+    # On one process these run the scipy backend's methods on the same matrix in CSR form
+    # (the local rows of one rank are all of W); under MPI only the communicating classes
+    # are available (they are needed before the stationary solve), the rest refuse in one
+    # line instead of gathering state vectors.
+
+    def _one_process_view(self, operator: Operator, what: str) -> Operator:
+        if self.world.size > 1:
+            raise BackendError(f"{what}: not available on the slepc backend under MPI in this "
+                               "version; rerun the stage on one process (gapline run CONFIG "
+                               "--from analyze)")
+        view = operator.handle.get("scipy_view")
+        if view is None:  # the scipy backend's own operator of the same model (checked)
+            view = self._scipy().assemble(operator.model)
+            operator.handle["scipy_view"] = view
+        return view
+
+    @staticmethod
+    def _scipy():
+        from pipeline.backends.scipy_ import ScipyBackend
+
+        return ScipyBackend()
+
+    def currents(self, operator: Operator, distribution: np.ndarray):
+        return self._scipy().currents(self._one_process_view(operator, "analyze.currents"),
+                                      distribution)
+
+    def communicating_classes(self, operator: Operator):
+        """Strongly connected components of the transition graph. Under MPI the pattern of
+        the positive off-diagonal rates (4 bytes per transition) is gathered on rank 0,
+        which computes the classes (scipy.sparse.csgraph) and shares the labels."""
+        if self.world.size == 1:
+            return self._scipy().communicating_classes(
+                self._one_process_view(operator, "classes"))
+        from pipeline.backends.base import Classes
+
+        W = operator.handle["W"]
+        start, stop = operator.handle["rows"]
+        indptr, indices, data = W.getValuesCSR()
+        rows = np.repeat(np.arange(start, stop, dtype=np.int64), np.diff(indptr))
+        keep = (data > 0) & (indices != rows)
+        ones, sums = W.createVecs()
+        ones.set(1.0)
+        W.multTranspose(ones, sums)
+        leak = sums.getArray(readonly=True).copy()
+        pieces = self.world.gather((rows[keep].astype(np.int32 if operator.n_states < 2**31
+                                                      else np.int64),
+                                    indices[keep], leak))
+        result = None
+        if self.world.is_root:
+            import scipy.sparse as sparse
+            import scipy.sparse.csgraph as csgraph
+
+            n = operator.n_states
+            target = np.concatenate([piece[0] for piece in pieces])
+            source = np.concatenate([piece[1] for piece in pieces])
+            leaks = np.concatenate([piece[2] for piece in pieces])
+            del pieces
+            graph = sparse.csr_matrix((np.ones(target.size, dtype=np.int8), (target, source)),
+                                      shape=(n, n))
+            count, labels = csgraph.connected_components(graph, directed=True,
+                                                         connection="strong")
+            labels = labels.astype(np.int64)
+            leaving = labels[target] != labels[source]
+            has_exit = np.bincount(labels[source[leaving]], minlength=count) > 0
+            leaky = np.bincount(labels, weights=np.minimum(leaks, 0.0), minlength=count) < -(
+                operator.check.tolerance)
+            result = Classes(labels, ~(has_exit | leaky))
+        return self.world.bcast(result)
+
+    def class_stationary(self, operator: Operator, states: np.ndarray,
+                         dense_limit: int = 1024):
+        return self._scipy().class_stationary(
+            self._one_process_view(operator, "solve.closed_classes"), states, dense_limit)
+
+    def solve_transposed(self, operator: Operator, rhs: np.ndarray):
+        return self._scipy().solve_transposed(
+            self._one_process_view(operator, "analyze.absorption"), rhs)
+
+    def evolve(self, operator: Operator, start: np.ndarray, times: np.ndarray) -> np.ndarray:
+        return self._scipy().evolve(self._one_process_view(operator, "evolve"), start, times)
+
+    def mode_expansion(self, operator: Operator, count: int, start: np.ndarray,
+                       times: np.ndarray, dense_limit: int = 1024):
+        return self._scipy().mode_expansion(
+            self._one_process_view(operator, "evolve.modes"), count, start, times,
+            dense_limit)
+
+    def symmetric_slowest_modes(self, operator: Operator, count: int, *,
+                                tolerance: float = 1e-12, vectors: bool = False,
+                                dense_limit: int = 1024) -> Modes:
+        """Reversible chains. On one process: the scipy backend's symmetrized solve on this
+        matrix (its ``p`` comes from detailed balance in logarithms, accurate where ``p``
+        spans hundreds of orders of magnitude). Under MPI: the general search, which takes
+        its symmetric-part path (Lanczos on D^-1/2 W D^1/2, certified by inertia)."""
+        if self.world.size == 1:
+            view = self._one_process_view(operator, "solve.symmetrize")
+            modes = self._scipy().symmetric_slowest_modes(view, count, tolerance=tolerance,
+                                                          vectors=vectors,
+                                                          dense_limit=dense_limit)
+            if vectors:
+                modes.vector_rows = operator.handle["rows"]
+            return modes
+        modes = self.slowest_modes(operator, count, tolerance=tolerance, vectors=vectors,
+                                   dense_limit=dense_limit)
+        symmetric = modes.info.get("search") == "symmetric part"
+        modes.info["symmetrized"] = symmetric
+        if symmetric:  # eigenvalues of a symmetric matrix: real (the rest is rounding)
+            modes.values = modes.values.real.astype(np.complex128)
+        return modes
+
     # -- stationary distribution ---------------------------------------------------------
 
     def stationary(self, operator: Operator, dense_limit: int = 1024) -> Stationary:

@@ -134,6 +134,37 @@ class Model(ABC):
         """Linear observables whose stationary expectations are stored (name -> definition)."""
         return {}
 
+    # -- optional hooks of the analysis stage (see DEVELOPERS.md, "Channels and exits") ----
+
+    def channel_names(self) -> tuple[str, ...]:
+        """Names of the transition channels that currents are summed over (default: one)."""
+        return ("all",)
+
+    def transition_channels(self, block: RowBlock) -> np.ndarray:
+        """Channel (an index into :meth:`channel_names`) of every entry of ``block``.
+
+        Returns int64 ``[entry]`` aligned with ``block.indices``: the channel of the
+        transition ``block.indices[k] -> row`` of entry ``k``, and ``-1`` on the diagonal.
+        Vectorized; the default puts every transition in channel 0.
+        """
+        rows = np.repeat(np.arange(block.start, block.stop, dtype=np.int64),
+                         np.diff(block.indptr))
+        return np.where(block.indices == rows, -1, 0).astype(np.int64)
+
+    def channel_displacements(self) -> np.ndarray | None:
+        """Displacement of one transition of each channel, float64 ``[channel, axis]``, for
+        the mean drift; None when states have no position."""
+        return None
+
+    def exit_names(self) -> tuple[str, ...]:
+        """Names of the ways probability leaves a sub-generator (default: none)."""
+        return ()
+
+    def exit_rates(self, start: int, stop: int) -> np.ndarray:
+        """Rates of leaving through each exit, float64 ``[state, exit]`` for states
+        ``start..stop-1``; the rows sum to the leak rate ``-sum_i W[i, j]``."""
+        return np.zeros((stop - start, 0))
+
 
 def compress_stencil(
     start: int, stop: int, columns: np.ndarray, values: np.ndarray,

@@ -288,6 +288,53 @@ class LatticeWalk(Model):
                 )
         return notes
 
+    # -- analysis hooks: channel = 2 * axis + (0 for a hop toward +1, 1 toward -1) --------
+
+    def channel_names(self) -> tuple[str, ...]:
+        return tuple(f"axis{a}{sign}" for a in range(self.dims) for sign in ("+", "-"))
+
+    def transition_channels(self, block: RowBlock) -> np.ndarray:
+        """Channel of every entry: ``2 * axis`` for a hop toward +1 along ``axis``, ``2 *
+        axis + 1`` toward -1, ``-1`` on the diagonal. The single entry of a size-2 ring
+        carries both hop rates and is counted as the +1 hop."""
+        rows = np.repeat(np.arange(block.start, block.stop, dtype=np.int64),
+                         np.diff(block.indptr))
+        columns = block.indices.astype(np.int64)
+        channels = np.full(columns.shape, -1, dtype=np.int64)
+        for axis in range(self.dims):  # a loop over axes
+            size, stride = self.shape[axis], self.strides[axis]
+            step = ((rows // stride) - (columns // stride)) % size  # target minus source
+            channels[step == 1] = 2 * axis
+            channels[(step == size - 1) & (step != 1)] = 2 * axis + 1
+        return channels
+
+    def channel_displacements(self) -> np.ndarray:
+        moves = np.zeros((2 * self.dims, self.dims))
+        for axis in range(self.dims):
+            moves[2 * axis, axis], moves[2 * axis + 1, axis] = 1.0, -1.0
+        return moves
+
+    def exit_names(self) -> tuple[str, ...]:
+        return tuple(f"axis{a}-{side}" for a in range(self.dims)
+                     if self.boundary[a] == "absorbing" for side in ("low", "high"))
+
+    def exit_rates(self, start: int, stop: int) -> np.ndarray:
+        """Rate of the hop off the low (coordinate 0, backward rate) and high (coordinate
+        ``size - 1``, forward rate) edge of every absorbing axis, ``[state, exit]``."""
+        state = np.arange(start, stop, dtype=np.int64)
+        columns = []
+        for axis in range(self.dims):
+            if self.boundary[axis] != "absorbing":
+                continue
+            size, stride = self.shape[axis], self.strides[axis]
+            coordinate = (state // stride) % size
+            _, _, forward_out, backward_out = self._axis_rates(axis, state, coordinate)
+            columns.append(np.where(coordinate == 0, backward_out, 0.0))
+            columns.append(np.where(coordinate == size - 1, forward_out, 0.0))
+        if not columns:
+            return np.zeros((stop - start, 0))
+        return np.stack(columns, axis=1).astype(np.float64)
+
     # -- helpers ---------------------------------------------------------------------
 
     def _axis_rates(

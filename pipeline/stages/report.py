@@ -63,6 +63,7 @@ def summarize(store: Store, run: str) -> str:
     if stationary is not None:
         st = stationary.attrs
         lines.append(f"  stationary: residual {st['residual']:.2e}, {st['method']}")
+    lines.extend(analysis_lines(store, run))
     verify = store.group(run, "verify", required=False)
     if verify is not None:
         checks = verify.attrs["checks"]
@@ -75,6 +76,62 @@ def summarize(store: Store, run: str) -> str:
                          f"(reference {_number(check['reference'])}, tolerance "
                          f"{_number(check['tolerance'])})")
     return "\n".join(lines)
+
+
+def analysis_lines(store: Store, run: str) -> list[str]:
+    """Relaxation, classes, currents, absorption and evolution lines of ``gapline show``."""
+    lines: list[str] = []
+    analysis = store.group(run, "analysis", required=False)
+    if analysis is not None:
+        a = dict(analysis.attrs)
+        r = a.get("relaxation", {})
+        if r.get("gap") is not None:
+            period = (f"oscillation period {_number(r['period'])}" if r.get("period")
+                      else "slowest mode real")
+            resolved = {True: "resolved", False: "NOT resolved", None: "no next mode"}[
+                r.get("resolved")]
+            lines.append(f"  relaxation: gap {r['gap']:.10g}, relaxation time "
+                         f"{_number(r['relaxation_time'])}, {period}, separation to the next "
+                         f"mode {_number(r.get('separation'))} ({resolved})")
+        c = a.get("classes", {})
+        lines.append(f"  classes: {c.get('count')} communicating, {c.get('closed')} closed, "
+                     f"{c.get('transient_states')} transient states")
+        currents = a.get("currents", {})
+        if currents.get("computed"):
+            values = analysis["channel_current"][:]
+            shown = ", ".join(f"{name} {value:.6g}"
+                              for name, value in zip(currents["channels"], values, strict=False))
+            lines.append(f"  currents per channel: {shown}")
+            if "drift" in currents:
+                lines.append("  drift per axis: "
+                             + ", ".join(f"{v:.6g}" for v in currents["drift"]))
+            verdict = "holds" if currents["detailed_balance"] else "fails"
+            lines.append(f"  entropy production {currents['entropy_production']:.10g} per unit "
+                         f"time; detailed balance {verdict} (defect "
+                         f"{currents['balance_defect']:.2e})")
+        for entry in currents.get("per_class", []):
+            verdict = "holds" if entry["detailed_balance"] else "fails"
+            lines.append(f"  closed class {entry['class']}: entropy production "
+                         f"{entry['entropy_production']:.10g}; detailed balance {verdict}")
+        absorption = a.get("absorption")
+        if absorption:
+            lines.append(f"  absorption: escape rate {_number(absorption['escape_rate'])}, "
+                         "mean time from the quasi-stationary law "
+                         f"{absorption['mean_time_from_quasi_stationary']:.6g}")
+            if "mean_time_from_start" in absorption:
+                lines.append(f"    from state {absorption['start_state']}: mean time "
+                             f"{absorption['mean_time_from_start']:.6g}")
+            if "splitting_from_start" in absorption:
+                lines.append("    exit probabilities: " + ", ".join(
+                    f"{name} {value:.4g}" for name, value in
+                    zip(absorption["exits"], absorption["splitting_from_start"], strict=False)))
+    evolution = store.group(run, "evolution", required=False)
+    if evolution is not None and evolution.attrs.get("requested"):
+        e = dict(evolution.attrs)
+        times = evolution["time"][:]
+        lines.append(f"  evolution from {e['start']}: {times.size} times up to "
+                     f"{times[-1]:.6g}, conservation defect {e['conservation_defect']:.1e}")
+    return lines
 
 
 def model_line(model: dict) -> str:

@@ -6,6 +6,7 @@ import time
 
 import numpy as np
 
+from pipeline.errors import SolverError
 from pipeline.observables import stationary_expectations
 from pipeline.parallel import state_chunk, world
 from pipeline.progress import log, warn
@@ -32,6 +33,10 @@ def stored_generator(ctx: RunContext):
                            fingerprint=str(group.attrs["fingerprint"]))
 
 
+#: detailed balance for solve.symmetrize: max |J_ij| / max W_ij p_j below this
+SYMMETRIC_DEFECT = 1e-10
+
+
 def run(ctx: RunContext) -> StageOutput:
     settings = ctx.config.solve
     backend = ctx.backend
@@ -45,15 +50,18 @@ def run(ctx: RunContext) -> StageOutput:
             log("solve: building the operator from the model (assemble results are reused)")
             ctx.operator = backend.assemble(ctx.model)
     operator = ctx.operator
-    modes = backend.slowest_modes(
-        operator,
-        settings.modes,
-        method=settings.method,
-        tolerance=settings.tolerance,
-        vectors=settings.vectors,
-        dense_limit=settings.dense_limit,
-        max_search=settings.max_search,
-    )
+    classes = _closed_classes(ctx) if operator.check.conserving else None
+    modes = _symmetrized_modes(ctx, classes) if settings.symmetrize != "never" else None
+    if modes is None:
+        modes = backend.slowest_modes(
+            operator,
+            settings.modes,
+            method=settings.method,
+            tolerance=settings.tolerance,
+            vectors=settings.vectors,
+            dense_limit=settings.dense_limit,
+            max_search=settings.max_search,
+        )
     if not modes.certified:
         warn(f"{modes.certificate.get('note')}")
     if not modes.group_complete:
@@ -95,7 +103,10 @@ def run(ctx: RunContext) -> StageOutput:
         # probability at rate -Re lambda_0 per unit mass.
         spectrum.attrs["quasi_stationary_outflow"] = float(-modes.values[0].real)
     groups = {"spectrum": spectrum}
-    if settings.stationary and operator.check.conserving:
+    several = classes is not None and int(classes.closed.sum()) > 1
+    if settings.stationary and several:
+        groups["stationary"] = _class_stationary(ctx, classes)
+    elif settings.stationary and operator.check.conserving:
         result = backend.stationary(operator, dense_limit=settings.dense_limit)
         observed = stationary_expectations(ctx.model, result.distribution, rows=result.rows)
         groups["stationary"] = GroupData(
@@ -108,7 +119,7 @@ def run(ctx: RunContext) -> StageOutput:
                 "method": result.method,
                 "residual": result.residual,
                 "negative_mass": result.negative_mass,
-                "sum": float(np.sum(result.distribution)),
+                "sum": float(world().sum(float(np.sum(result.distribution)))),
                 "seconds": result.seconds,
                 "residual_definition": "||W p||_1 / ||W||_1, sum(p) = 1",
                 "observables": {name: meaning for name, (_, _, meaning) in observed.items()},
@@ -129,3 +140,69 @@ def _state_array(data: np.ndarray, dims: tuple[str, ...], rows: tuple[int, int] 
     ranks = world().size
     return ArraySpec(data, dims, shape=(n_states, *data.shape[1:]), offset=rows[0],
                      chunk_rows=state_chunk(n_states, ranks))
+
+
+def _closed_classes(ctx: RunContext):
+    """Communicating classes, found before solving; refuses several closed classes when the
+    config asks for a single stationary law."""
+    classes = ctx.backend.communicating_classes(ctx.operator)
+    closed = int(classes.closed.sum())
+    if closed > 1:
+        log(f"solve: W has {closed} closed classes: one stationary law per class")
+        if ctx.config.solve.stationary and ctx.config.solve.closed_classes == "single":
+            raise SolverError(f"solve.closed_classes: W has {closed} closed classes, so the "
+                              "stationary law is not unique; set solve.closed_classes = "
+                              "'per-class' (or solve.stationary = false)")
+    return classes
+
+
+def _class_stationary(ctx: RunContext, classes) -> GroupData:
+    """One stationary law per closed class, as ``class_distributions [class, state]``
+    (zero outside the class) with the class label of each row."""
+    closed = np.flatnonzero(classes.closed)
+    n = ctx.operator.n_states
+    laws = np.zeros((closed.size, n))
+    residuals, methods = [], []
+    for row, label in enumerate(closed):  # a loop over closed classes
+        states = np.flatnonzero(classes.labels == label)
+        result = ctx.backend.class_stationary(ctx.operator, states,
+                                              dense_limit=ctx.config.solve.dense_limit)
+        laws[row, states] = result.distribution
+        residuals.append(result.residual)
+        methods.append(result.method)
+    return GroupData(
+        arrays={"class_distributions": ArraySpec(laws, ("class", "state")),
+                "class_labels": ArraySpec(closed.astype(np.int64), ("class",))},
+        attrs={"backend": ctx.backend.name, "method": "; ".join(sorted(set(methods))),
+               "closed_classes": int(closed.size), "residuals": residuals,
+               "residual": float(max(residuals)),
+               "residual_definition": "||W_c p_c||_1 / ||W||_1 on each closed class c"},
+    )
+
+
+def _symmetrized_modes(ctx: RunContext, classes):
+    """The symmetrized solve when the chain is reversible (solve.symmetrize), else None."""
+    settings, operator, backend = ctx.config.solve, ctx.operator, ctx.backend
+    reason = None
+    if not operator.check.conserving:
+        reason = "W is a sub-generator"
+    elif classes is not None and classes.count > 1:
+        reason = "W is not irreducible"
+    if reason is None:
+        p = backend.stationary(operator, dense_limit=settings.dense_limit).distribution
+        defect = backend.currents(operator, p).balance_defect
+        if defect > SYMMETRIC_DEFECT:
+            reason = f"detailed balance fails (defect {defect:.1e} > {SYMMETRIC_DEFECT:g})"
+    if reason is not None:
+        if settings.symmetrize == "always":
+            raise SolverError(f"solve.symmetrize: 'always' needs a reversible chain but {reason};"
+                              " set solve.symmetrize = 'auto' or 'never'")
+        log(f"solve: not symmetrized: {reason}")
+        return None
+    log(f"solve: detailed balance holds (defect {defect:.1e}): symmetrized solve")
+    modes = backend.symmetric_slowest_modes(operator, settings.modes,
+                                            tolerance=settings.tolerance,
+                                            vectors=settings.vectors,
+                                            dense_limit=settings.dense_limit)
+    modes.info["balance_defect"] = defect
+    return modes

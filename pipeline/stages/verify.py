@@ -10,6 +10,7 @@ import numpy as np
 
 from pipeline.stages.base import RunContext, StageOutput
 from pipeline.store import GroupData
+from pipeline.verification.analysis_checks import analysis_checks
 from pipeline.verification.checks import Check, compare_multisets, spectral_gap
 
 NAME = "verify"
@@ -102,6 +103,13 @@ def run(ctx: RunContext) -> StageOutput:
         ))
 
     stationary = store.group(run_name, "stationary", required=False)
+    if stationary is not None and "class_distributions" in stationary:
+        residual = float(stationary.attrs["residual"])
+        checks.append(Check("stationary.class_residuals",
+                            "common practice: ||W_c p_c||_1 / ||W||_1 per closed class",
+                            residual, 0.0, settings.residual_tolerance,
+                            residual <= settings.residual_tolerance))
+        stationary = None
     if stationary is not None:
         attrs = dict(stationary.attrs)
         residual = float(attrs["residual"])
@@ -135,6 +143,7 @@ def run(ctx: RunContext) -> StageOutput:
             checks.append(Check(f"stationary.{name}", "; ".join(exact.observable_sources),
                                 difference, 0.0, settings.tolerance,
                                 difference <= settings.tolerance))
+    checks.extend(analysis_checks(store, run_name, settings))
     passed = all(check.passed for check in checks)
     group = GroupData(attrs={"passed": passed, "checks": [c.as_dict() for c in checks],
                              "norm1": norm1})
