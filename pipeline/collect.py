@@ -200,10 +200,23 @@ def collect_sweep(store_path: str, sweep: str) -> Collection:
     return Collection(sweep=sweep, path=path, dataset=dataset)
 
 
+def _tied_to_size(tasks, key: str, size_key: str) -> bool:
+    """True when ``key`` changes with the size and only with it (zipped with it, e.g. the
+    particle number of an exclusion ring at fixed filling): not a separate fit family."""
+    pairs = {json.dumps(task["parameters"].get(size_key)): json.dumps(task["parameters"].get(key))
+             for task in tasks}
+    sizes = {json.dumps(task["parameters"].get(size_key)) for task in tasks}
+    values = {json.dumps(task["parameters"].get(key)) for task in tasks}
+    consistent = all(pairs[json.dumps(task["parameters"].get(size_key))]
+                     == json.dumps(task["parameters"].get(key)) for task in tasks)
+    return consistent and len(values) == len(sizes) > 1
+
+
 def _fits(tasks, parameters, sizes, gaps, rows) -> dict[str, Any]:
     """Fits of gap against size, one per combination of the other swept fields."""
     size_key = next(key for key in parameters if SIZE_FIELDS.match(key))
-    others = [key for key in parameters if key != size_key]
+    others = [key for key in parameters if key != size_key
+              and not _tied_to_size(tasks, key, size_key)]
     groups: dict[str, list[int]] = {}
     for i, task in enumerate(tasks):
         if rows[i]["status"] == "complete" and gaps[i] > 0:

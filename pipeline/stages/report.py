@@ -106,13 +106,14 @@ def analysis_lines(store: Store, run: str) -> list[str]:
                 lines.append("  drift per axis: "
                              + ", ".join(f"{v:.6g}" for v in currents["drift"]))
             verdict = "holds" if currents["detailed_balance"] else "fails"
-            lines.append(f"  entropy production {currents['entropy_production']:.10g} per unit "
+            entropy = _precise(currents["entropy_production"])
+            lines.append(f"  entropy production {entropy} per unit "
                          f"time; detailed balance {verdict} (defect "
                          f"{currents['balance_defect']:.2e})")
         for entry in currents.get("per_class", []):
             verdict = "holds" if entry["detailed_balance"] else "fails"
             lines.append(f"  closed class {entry['class']}: entropy production "
-                         f"{entry['entropy_production']:.10g}; detailed balance {verdict}")
+                         f"{_precise(entry['entropy_production'])}; detailed balance {verdict}")
         absorption = a.get("absorption")
         if absorption:
             lines.append(f"  absorption: escape rate {_number(absorption['escape_rate'])}, "
@@ -150,6 +151,12 @@ def model_line(model: dict) -> str:
     if kind in ("network", "matrix"):
         return f"{kind} {Path(str(model.get('file', '?'))).name}"
     return str(kind or "?")
+
+
+def _precise(value) -> str:
+    """10 significant digits; stored infinities ("inf": a transition without its reverse
+    makes the entropy production infinite) are shown as they are."""
+    return f"{value:.10g}" if isinstance(value, int | float) else str(value)
 
 
 def _number(value) -> str:
