@@ -31,7 +31,7 @@ def _finished(store_path):
 def test_second_run_skips_every_stage(tmp_path, quiet, capsys, monkeypatch):
     store_path = tmp_path / "s.zarr"
     first = _run(tmp_path, store_path)
-    assert first.stages_run == ["assemble", "solve", "verify", "report"]
+    assert first.stages_run == ["assemble", "solve", "analyze", "evolve", "verify", "report"]
     monkeypatch.setenv("GAPLINE_PROGRESS", "plain")
     second = _run(tmp_path, store_path)
     assert second.stages_run == []
@@ -46,7 +46,7 @@ def test_changed_solver_tolerance_reruns_solve_and_later_not_assemble(tmp_path, 
     _run(tmp_path, store_path)
     before = Store(store_path).stage_record(RUN, "assemble")
     outcome = _run(tmp_path, store_path, ["solve.tolerance=1e-10"])
-    assert outcome.stages_run == ["solve", "verify", "report"]
+    assert outcome.stages_run == ["solve", "analyze", "evolve", "verify", "report"]
     assert Store(store_path).stage_record(RUN, "assemble") == before
     # The rerun results are current and right: dense numpy reference of the same ring.
     config = load_config(ring_config(tmp_path, RUN, SIZE, 5), ["solve.tolerance=1e-10"])
@@ -69,7 +69,7 @@ def test_changed_model_reruns_everything(tmp_path, quiet):
     store_path = tmp_path / "s.zarr"
     _run(tmp_path, store_path)
     outcome = _run(tmp_path, store_path, ["model.forward[0]=1.1"])
-    assert outcome.stages_run == ["assemble", "solve", "verify", "report"]
+    assert outcome.stages_run == ["assemble", "solve", "analyze", "evolve", "verify", "report"]
 
 
 def test_interrupted_stage_is_not_up_to_date(tmp_path, quiet, monkeypatch):
@@ -93,14 +93,14 @@ def test_interrupted_stage_is_not_up_to_date(tmp_path, quiet, monkeypatch):
     monkeypatch.setattr(store_module.Store, "_write_run_attrs", original)
     assert Store(store_path).group_status(RUN, "spectrum") == "incomplete"
     outcome = _run(tmp_path, store_path, ["solve.modes=6"])
-    assert outcome.stages_run == ["solve", "verify", "report"]
+    assert outcome.stages_run == ["solve", "analyze", "evolve", "verify", "report"]
 
 
 def test_forced_rerun_with_only(tmp_path, quiet):
     store_path = tmp_path / "s.zarr"
     _run(tmp_path, store_path)
     assert _run(tmp_path, store_path, only="verify").stages_run == ["verify"]
-    assert _run(tmp_path, store_path, start="solve").stages_run == ["solve", "verify", "report"]
+    assert _run(tmp_path, store_path, start="solve").stages_run == ["solve", "analyze", "evolve", "verify", "report"]
 
 
 def test_stored_matrix_solve_reruns_without_the_model(tmp_path, quiet, monkeypatch):
@@ -122,7 +122,7 @@ def test_stored_matrix_solve_reruns_without_the_model(tmp_path, quiet, monkeypat
 
     monkeypatch.setattr(pipeline.models.lattice.LatticeWalk, "row_block", no_rows)
     outcome = _run(tmp_path, store_path, ["solve.modes=8"], extra=extra)
-    assert outcome.stages_run == ["solve", "verify", "report"]
+    assert outcome.stages_run == ["solve", "analyze", "evolve", "verify", "report"]
     assert outcome.verified is True
     reference = slowest_first(np.linalg.eigvals(W), tolerance_for(W))[:8]
     values = Store(store_path).group(RUN, "spectrum")["eigenvalues"][:]

@@ -77,6 +77,27 @@ class StoredGenerator(Model):
     def index_dtype(self) -> np.dtype:
         return np.dtype(self._indices.dtype)
 
+    # The source model's observables and analysis hooks (they depend on the states and
+    # transitions, which are the same).
+
+    def observables(self):
+        return self.source.observables()
+
+    def channel_names(self) -> tuple[str, ...]:
+        return self.source.channel_names()
+
+    def transition_channels(self, block: RowBlock) -> np.ndarray:
+        return self.source.transition_channels(block)
+
+    def channel_displacements(self) -> np.ndarray | None:
+        return self.source.channel_displacements()
+
+    def exit_names(self) -> tuple[str, ...]:
+        return self.source.exit_names()
+
+    def exit_rates(self, start: int, stop: int) -> np.ndarray:
+        return self.source.exit_rates(start, stop)
+
 
 def csr_from_model(model: Model, block_rows: int = BLOCK_ROWS) -> tuple[np.ndarray, ...]:
     """``(indptr, indices, data)`` of the whole ``W`` from the model's row blocks."""
