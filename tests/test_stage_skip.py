@@ -100,7 +100,8 @@ def test_forced_rerun_with_only(tmp_path, quiet):
     store_path = tmp_path / "s.zarr"
     _run(tmp_path, store_path)
     assert _run(tmp_path, store_path, only="verify").stages_run == ["verify"]
-    assert _run(tmp_path, store_path, start="solve").stages_run == ["solve", "analyze", "evolve", "verify", "report"]
+    assert _run(tmp_path, store_path, start="solve").stages_run == [
+        "solve", "analyze", "evolve", "verify", "report"]
 
 
 def test_stored_matrix_solve_reruns_without_the_model(tmp_path, quiet, monkeypatch):
