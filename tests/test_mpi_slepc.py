@@ -227,3 +227,22 @@ def _run_with(config: Path, store: Path, ranks: int, extra: list[str],
                    *(["--allow-run-as-root"] if os.geteuid() == 0 else []), *command]
     return subprocess.run(command, capture_output=True, text=True, env=env, timeout=300,
                           cwd=REPO)
+
+
+def test_analysis_under_mpi_is_a_skip_note_then_runs_on_one_process(tmp_path):
+    """analyze/evolve do not run under MPI yet: the 2-rank run commits a skip note (no made-up
+    results), and `--from analyze` on one process then computes them; the entropy
+    production of the biased ring is (u - v) ln(u/v) per unit time (Schnakenberg 1976)."""
+    config = _config(tmp_path, "ring", "slepc")
+    store = tmp_path / "s.zarr"
+    first = _run_with(config, store, 2, [])
+    assert first.returncode == 0, first.stderr[-2000:]
+    assert "does not run under MPI" in first.stderr
+    analysis = zarr.open_group(str(store / "ring" / "analysis"), mode="r")
+    assert analysis.attrs["skipped"] and "channel_flux" not in analysis
+    again = _run_with(config, store, 1, ["--from", "analyze"])
+    assert again.returncode == 0, again.stderr[-2000:]
+    currents = dict(zarr.open_group(str(store / "ring" / "analysis"), mode="r").attrs)[
+        "currents"]
+    np.testing.assert_allclose(currents["entropy_production"],
+                               (1.3 - 0.4) * np.log(1.3 / 0.4), rtol=1e-9)
