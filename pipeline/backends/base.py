@@ -19,6 +19,7 @@ import numpy as np
 
 from pipeline.errors import BackendError, ModelError
 from pipeline.models.base import BLOCK_TOLERANCE, Model
+from pipeline.progress import log
 
 __all__ = [
     "Backend",
@@ -29,6 +30,7 @@ __all__ = [
     "Operator",
     "Stationary",
     "check_column_sums",
+    "resolve_method",
 ]
 
 
@@ -239,6 +241,20 @@ class Backend(ABC):
         ``||S s - lambda s|| + ||(S - S^T)/2||_1`` (the skew part is 0 for a reversible
         chain, up to rounding)."""
         raise self._unsupported("the symmetrized solve of reversible chains")
+
+
+def resolve_method(method: str, n: int, count: int, dense_limit: int) -> str:
+    """The method a backend runs for ``solve.method``: ``auto`` is dense up to
+    ``dense_limit`` states, else shift-invert; shift-invert falls back to dense when the
+    count leaves a Krylov search (at most n - 2 modes) no room past the last wanted mode (it
+    could neither see the rest of its group nor be certified)."""
+    if method == "auto":
+        method = "dense" if n <= dense_limit else "shift-invert"
+    if method == "shift-invert" and count >= n - 2:
+        log(f"solve: {count} modes of {n} states leave a Krylov search (at most n - 2 = "
+            f"{n - 2}) no room to certify; using dense")
+        method = "dense"
+    return method
 
 
 def check_column_sums(

@@ -32,7 +32,14 @@ import scipy.linalg
 import scipy.sparse as sp
 import scipy.sparse.linalg as spla
 
-from pipeline.backends.base import Backend, Modes, Operator, Stationary, check_column_sums
+from pipeline.backends.base import (
+    Backend,
+    Modes,
+    Operator,
+    Stationary,
+    check_column_sums,
+    resolve_method,
+)
 from pipeline.backends.completeness import SpectrumEnclosure, farthest_enclosed_distance
 from pipeline.backends.conditioning import eigenvalue_conditions
 from pipeline.backends.scipy_analysis import ScipyAnalysis
@@ -154,14 +161,7 @@ class ScipyBackend(ScipyAnalysis, Backend):
     ) -> Modes:
         n = operator.n_states
         count = min(count, n)
-        if method == "auto":
-            method = "dense" if n <= dense_limit else "shift-invert"
-        if method == "shift-invert" and count >= n - 2:
-            # Arnoldi returns at most n - 2 modes: the search could not reach past the last
-            # wanted one, so it could never be certified (nor see the rest of its group).
-            log(f"solve: {count} modes of {n} states leave Arnoldi (at most n - 2 = {n - 2}) "
-                "no room to certify; using dense")
-            method = "dense"
+        method = resolve_method(method, n, count, dense_limit)
         if method == "dense":
             return self._dense_modes(operator, count, vectors)
         if method == "krylov":

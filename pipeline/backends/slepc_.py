@@ -24,6 +24,7 @@ from pipeline.backends.base import (
     Operator,
     Stationary,
     check_column_sums,
+    resolve_method,
 )
 from pipeline.backends.conditioning import conditions_from_products
 from pipeline.backends.petsc_tools import (
@@ -197,12 +198,7 @@ class SlepcBackend(Backend):
     ) -> Modes:
         n = operator.n_states
         count = min(count, n)
-        if method == "auto":
-            method = "dense" if n <= dense_limit else "shift-invert"
-        if method == "shift-invert" and count >= n - 2:
-            log(f"solve: {count} modes of {n} states leave no room past the last one; "
-                "using dense")
-            method = "dense"
+        method = resolve_method(method, n, count, dense_limit)
         if method == "dense":
             return self._dense_modes(operator, count, vectors)
         if method == "krylov":

@@ -166,6 +166,25 @@ class Model(ABC):
         return np.zeros((stop - start, 0))
 
 
+class CsrRows:
+    """Row blocks, nonzero counts and bounds of a model that holds its generator as a CSR
+    matrix ``self.W`` (rows = target states, the ``W[i, j] = rate j -> i`` convention)."""
+
+    W: Any
+
+    def nnz_upper_bound(self, start: int, stop: int) -> int:
+        return int(self.W.indptr[stop] - self.W.indptr[start])
+
+    def nnz_count(self) -> int:
+        return int(self.W.nnz)
+
+    def row_block(self, start: int, stop: int) -> RowBlock:
+        indptr = self.W.indptr
+        first, last = int(indptr[start]), int(indptr[stop])
+        return RowBlock(start, stop, (indptr[start : stop + 1] - first).astype(np.int64),
+                        self.W.indices[first:last], self.W.data[first:last])
+
+
 def compress_stencil(
     start: int, stop: int, columns: np.ndarray, values: np.ndarray,
     present: np.ndarray | None,

@@ -16,7 +16,7 @@ from typing import Any
 import numpy as np
 
 from pipeline.errors import ModelError
-from pipeline.models.base import BLOCK_TOLERANCE, Model, RowBlock
+from pipeline.models.base import BLOCK_TOLERANCE, CsrRows, Model
 
 __all__ = ["UserMatrix", "load_sparse"]
 
@@ -47,7 +47,7 @@ def load_sparse(path: str, label: str = "model.file"):
     return matrix
 
 
-class UserMatrix(Model):
+class UserMatrix(CsrRows, Model):
     """A generator given as a sparse matrix (see the module docstring)."""
 
     name = "matrix"
@@ -119,18 +119,6 @@ class UserMatrix(Model):
     @property
     def conserving(self) -> bool:
         return self._conserving
-
-    def nnz_upper_bound(self, start: int, stop: int) -> int:
-        return int(self.W.indptr[stop] - self.W.indptr[start])
-
-    def nnz_count(self) -> int:
-        return int(self.W.nnz)
-
-    def row_block(self, start: int, stop: int) -> RowBlock:
-        indptr = self.W.indptr
-        first, last = int(indptr[start]), int(indptr[stop])
-        return RowBlock(start, stop, (indptr[start : stop + 1] - first).astype(np.int64),
-                        self.W.indices[first:last], self.W.data[first:last])
 
     def state_labels(self, start: int, stop: int) -> dict[str, np.ndarray]:
         return {"index": np.arange(start, stop, dtype=np.int64)}

@@ -26,7 +26,7 @@ from typing import Any
 import numpy as np
 
 from pipeline.errors import ModelError
-from pipeline.models.base import Model, RowBlock
+from pipeline.models.base import CsrRows, Model
 
 __all__ = ["GraphWalk", "read_graph"]
 
@@ -132,7 +132,7 @@ def _read_edgelist(path: str, name: str, nodes: tuple[str, ...] | None = None):
             np.array(weights, dtype=float))
 
 
-class GraphWalk(Model):
+class GraphWalk(CsrRows, Model):
     """Random walk on a graph; see the module docstring."""
 
     name = "network"
@@ -206,18 +206,6 @@ class GraphWalk(Model):
     @property
     def conserving(self) -> bool:
         return True
-
-    def nnz_upper_bound(self, start: int, stop: int) -> int:
-        return int(self.W.indptr[stop] - self.W.indptr[start])
-
-    def nnz_count(self) -> int:
-        return int(self.W.nnz)
-
-    def row_block(self, start: int, stop: int) -> RowBlock:
-        indptr = self.W.indptr
-        first, last = int(indptr[start]), int(indptr[stop])
-        return RowBlock(start, stop, (indptr[start : stop + 1] - first).astype(np.int64),
-                        self.W.indices[first:last], self.W.data[first:last])
 
     def state_labels(self, start: int, stop: int) -> dict[str, np.ndarray]:
         return {"node": np.array(self.labels[start:stop], dtype=object).astype(str)}
