@@ -11,7 +11,6 @@ import pytest
 import scipy.linalg
 import scipy.sparse.linalg as spla
 
-import pipeline.backends.scipy_ as scipy_backend
 from pipeline.backends.scipy_ import ScipyBackend
 from pipeline.errors import SolverError
 from pipeline.models.lattice import Disorder, LatticeWalk
@@ -406,7 +405,9 @@ def test_stationary_inverse_iteration_converges_on_a_slow_chain(backend):
 
 
 def test_stationary_error_estimate_is_honest_when_steps_run_out(backend, monkeypatch):
-    monkeypatch.setattr(scipy_backend, "STATIONARY_MAX_STEPS", 6)
+    import pipeline.backends.inverse_iteration as iteration
+
+    monkeypatch.setattr(iteration, "STATIONARY_MAX_STEPS", 6)
     model, expected = _slow_trap_ring()
     result = backend.stationary(backend.assemble(model), dense_limit=0)
     error = np.abs(result.distribution - expected).sum()

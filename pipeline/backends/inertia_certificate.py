@@ -128,6 +128,7 @@ def certify_by_inertia(
     shift: float,
     options_prefix: str = "gapline_cert_",
     factor_cache: dict[float, Any] | None = None,
+    symmetric: Any = None,
 ) -> InertiaCertificate:
     """Decide whether ``values`` (found eigenvalues, all with real part > ``shift``; their
     right eigenvectors ``vectors``, local rows ``[row, k]``) are all of ``W``'s eigenvalues
@@ -136,7 +137,8 @@ def certify_by_inertia(
     ``scaling``: local rows of ``D`` (positive). ``shift``: ``t``, placed inside a gap of the
     found real parts (the caller picks it between the last wanted group and the next one).
     ``factor_cache``: keeps the factorization of ``t I - S`` per ``t`` for repeated tests
-    (the caller destroys the entries: ``(ksp, matrix, inertia)``).
+    (the caller destroys the entries: ``(ksp, matrix, inertia)``). ``symmetric``: ``S``
+    when the caller has built it already (it is copied, not changed).
     """
     PETSc = petsc()
     started = time.perf_counter()
@@ -166,7 +168,7 @@ def certify_by_inertia(
     # The inertia test.
     cached = factor_cache.get(shift) if factor_cache is not None else None
     if cached is None:
-        S, _ = symmetric_part(W, scaling)
+        S = symmetric.copy() if symmetric is not None else symmetric_part(W, scaling)[0]
         S.scale(-1.0)
         S.shift(shift)  # M = t I - S
         S.setOption(PETSc.Mat.Option.SYMMETRIC, True)

@@ -22,7 +22,6 @@ normalization for small N.
 
 from __future__ import annotations
 
-import math
 import os
 import time
 from typing import Any
@@ -42,6 +41,7 @@ from pipeline.backends.base import (
 )
 from pipeline.backends.completeness import SpectrumEnclosure, farthest_enclosed_distance
 from pipeline.backends.conditioning import eigenvalue_conditions
+from pipeline.backends.inverse_iteration import STATIONARY_TARGET, inverse_iteration
 from pipeline.backends.scipy_analysis import ScipyAnalysis
 from pipeline.errors import BackendError, ModelError, SolverError
 from pipeline.models.base import Model, validate_block
@@ -53,8 +53,6 @@ __all__ = ["ScipyBackend", "mpi_world_size"]
 SHIFT_FACTOR = 1e-9
 DENSE_MEMORY_LIMIT = 8 * 2**30  # bytes a dense solve may take before we refuse
 RESIDUAL_CEILING = 1e-6  # above this a mode is not trusted for the certificate
-STATIONARY_MAX_STEPS = 600
-STATIONARY_TARGET = 1e-13  # 1-norm error of the stationary vector inverse iteration aims at
 BASIS_MEMORY_FRACTION = 0.25  # of physical memory, for the Arnoldi basis
 CLUSTER_FACTOR = 1e-8  # eigenvalues closer than this times ||W||_1 are one cluster
 
@@ -426,38 +424,9 @@ class ScipyBackend(ScipyAnalysis, Backend):
 
 
 def _inverse_iteration(lu: Any, n: int) -> tuple[np.ndarray, int, float]:
-    """Stationary vector by inverse iteration with the LU of ``W - sigma I``.
-
-    Each step shrinks the component of mode k by ``sigma / |lambda_k - sigma|``, so the slow
-    modes set the pace when the gap is near sigma. The residual ``||W p||`` is blind to them
-    (an error e along mode 1 leaves a residual |lambda_1| e), so convergence is judged on the
-    change between steps: once the contraction ``rho`` per step has settled, the error is about
-    ``rho / (1 - rho) x change`` (a posteriori bound of a contraction; from memory), doubled
-    for safety. Returns ``(p, steps, error estimate)``, the estimate in the 1-norm (``inf``
-    when the contraction never settled).
-    """
-    p = np.full(n, 1.0 / n)
-    steps, change, ratios = 0, np.inf, [np.nan, np.nan]
-    estimate = np.inf
-    while steps < STATIONARY_MAX_STEPS:
-        steps += 1
-        following = lu.solve(p)
-        following /= following.sum()
-        previous, change = change, float(np.abs(following - p).sum())
-        p = following
-        if change >= previous:  # no progress any more: the rounding floor of one step
-            estimate = min(estimate, change) if np.isfinite(estimate) else change
-            break
-        ratios = [ratios[1], change / previous if np.isfinite(previous) else np.nan]
-        settled = ratios[1] < 1 and abs(ratios[1] - ratios[0]) <= 0.1 * ratios[1]
-        estimate = 2 * change * ratios[1] / (1 - ratios[1]) if settled else np.inf
-        if change <= 1e-15 and settled:
-            break
-        if settled and estimate > STATIONARY_TARGET:
-            needed = math.log(STATIONARY_TARGET / estimate) / math.log(ratios[1])
-            if steps + needed > STATIONARY_MAX_STEPS:
-                break  # cannot get there within the budget: report what it is
-    return p, steps, float(estimate)
+    """Stationary vector by inverse iteration with the LU of ``W - sigma I`` from the
+    uniform law (see :mod:`pipeline.backends.inverse_iteration`)."""
+    return inverse_iteration(lu.solve, np.full(n, 1.0 / n))
 
 
 def _error_estimates(condition: np.ndarray, residuals: np.ndarray, scale: float) -> np.ndarray:

@@ -9,7 +9,6 @@ Ownership: rank r assembles and keeps rows ``pipeline.parallel.ownership_ranges(
 
 from __future__ import annotations
 
-import math
 import resource
 import time
 from typing import Any
@@ -27,6 +26,7 @@ from pipeline.backends.base import (
     resolve_method,
 )
 from pipeline.backends.conditioning import conditions_from_products
+from pipeline.backends.inverse_iteration import STATIONARY_TARGET, inverse_iteration
 from pipeline.backends.petsc_tools import (
     apply,
     apply_transpose,
@@ -46,8 +46,6 @@ __all__ = ["SlepcBackend"]
 
 SHIFT_FACTOR = 1e-9  # target of shift-and-invert: this times the largest exit rate (> 0)
 CLUSTER_FACTOR = 1e-8  # eigenvalues closer than this times ||W||_1 are one cluster
-STATIONARY_MAX_STEPS = 200
-STATIONARY_TARGET = 1e-13
 MAX_ROUNDS = 4
 # modes asked for beyond the wanted ones: the certificate needs one converged real part
 # below the last wanted group (the search widens when it has none)
@@ -392,8 +390,7 @@ class SlepcBackend(Backend):
         backend = self
 
         if stationary is not None:
-            weights = np.sqrt(np.maximum(np.abs(stationary) / max(self.world.max(float(
-                np.abs(stationary).max(initial=0.0))), 1e-300), 1e-100))
+            weights = self._scaling_from(stationary, floor=1e-100)
             # transposed problem: balanced by D^-1 (W^T is balanced by the inverse scaling)
             scaling = 1.0 / weights if transpose else weights
             # the null vector in these coordinates: D^-1 p for W, D 1 = E^-1 1 for W^T
@@ -647,10 +644,12 @@ class SlepcBackend(Backend):
             global_norms(self.world, probes), 1e-300)
         return bool(size.max() <= 1e-12 * operator.check.norm1 ** 2)
 
-    def _scaling_from(self, stationary: np.ndarray) -> np.ndarray:
+    def _scaling_from(self, stationary: np.ndarray, floor: float = 1e-200) -> np.ndarray:
+        """Local rows of ``D = diag(sqrt(p / max p))``, floored at ``sqrt(floor)`` so ``D``
+        stays positive (any positive ``D`` is a similarity; ``p`` only makes it sharp)."""
         p = np.abs(stationary)
         peak = self.world.max(float(p.max(initial=0.0)))
-        return np.sqrt(np.maximum(p / max(peak, 1e-300), 1e-200))
+        return np.sqrt(np.maximum(p / max(peak, 1e-300), floor))
 
     def _symmetric_part_search(self, operator: Operator, count: int, tolerance: float,
                                stationary: np.ndarray) -> dict[str, Any]:
@@ -744,7 +743,7 @@ class SlepcBackend(Backend):
             keep = values.real > test_shift
             self._apply_user_options()
             cert = certify_by_inertia(self.world, W, scaling, values[keep], vectors[:, keep],
-                                      test_shift, factor_cache=factor_cache)
+                                      test_shift, factor_cache=factor_cache, symmetric=S)
             log(f"solve: symmetric-part search, certificate at t = {test_shift:.3e}: "
                 f"{cert.above_shift} above t, {cert.captured} in the found span -> "
                 + ("certified" if cert.certified else f"{cert.missing} missing"))
@@ -790,10 +789,7 @@ class SlepcBackend(Backend):
         """Local rows of ``D = diag(sqrt(p))``, ``p`` the stationary (Perron) vector: the
         eigenvector of the slowest mode, floored so ``D`` stays positive (any positive ``D``
         keeps the certificate rigorous; ``p`` makes it sharp)."""
-        top = int(np.argmax(values.real))
-        p = np.abs(local[:, top].real)
-        peak = self.world.max(float(p.max(initial=0.0)))
-        return np.sqrt(np.maximum(p / max(peak, 1e-300), 1e-200))
+        return self._scaling_from(local[:, int(np.argmax(values.real))].real)
 
     def _certify(self, W: Any, scaling: np.ndarray, values: np.ndarray, vectors: np.ndarray,
                  shift: float):
@@ -998,28 +994,3 @@ class SlepcBackend(Backend):
         return {"backend": self.name, "ranks": self.world.size,
                 "peak_memory_mib_per_rank": [round(v, 1) for v in self.world.allgather(peak)],
                 "petsc_options": {str(k): str(v) for k, v in self.options.items()}}
-
-
-def inverse_iteration(solve: Any, start: np.ndarray, total: Any) -> tuple[np.ndarray, int, float]:
-    """Stationary vector by inverse iteration ``p <- solve(p) / sum``, judged by the
-    contraction of the change between steps (see the scipy backend's docstring: the error is
-    about ``rho / (1 - rho)`` times the change once the rate ``rho`` has settled; from memory).
-    ``start``/results are local rows; ``total`` sums a number over ranks."""
-    p = start
-    steps, change, ratios = 0, math.inf, [math.nan, math.nan]
-    estimate = math.inf
-    while steps < STATIONARY_MAX_STEPS:
-        steps += 1
-        following = solve(p)
-        following /= total(float(following.sum()))
-        previous, change = change, total(float(np.abs(following - p).sum()))
-        p = following
-        if change >= previous:
-            estimate = min(estimate, change) if math.isfinite(estimate) else change
-            break
-        ratios = [ratios[1], change / previous if math.isfinite(previous) else math.nan]
-        settled = ratios[1] < 1 and abs(ratios[1] - ratios[0]) <= 0.1 * ratios[1]
-        estimate = 2 * change * ratios[1] / (1 - ratios[1]) if settled else math.inf
-        if change <= 1e-15 and settled:
-            break
-    return p, steps, float(estimate)
