@@ -1,6 +1,7 @@
 """Driver for test_mpi_slepc: assemble, under mpiexec, a model whose last rows (owned by
-the last rank) are broken (a column no longer sums to 0); every rank prints the error
-it ends with."""
+the last rank) are broken (a column no longer sums to 0); every rank writes the error it
+ends with to ``DIRECTORY/rank-R.txt`` (files, not stdout: mpiexec may interleave the lines
+of two ranks)."""
 
 from __future__ import annotations
 
@@ -16,6 +17,8 @@ from tests.test_backend_slepc import _BrokenModel  # noqa: E402
 
 try:
     SlepcBackend().assemble(_BrokenModel())
-    print(f"rank {world().rank}: no error", flush=True)
+    outcome = "no error"
 except GaplineError as error:
-    print(f"rank {world().rank}: {error}", flush=True)
+    outcome = str(error)
+with open(os.path.join(sys.argv[1], f"rank-{world().rank}.txt"), "w") as handle:
+    handle.write(outcome)
