@@ -39,6 +39,7 @@ from typing import Any
 import numpy as np
 
 from pipeline.backends.petsc_tools import apply, apply_transpose, gram, orthonormalize, petsc
+from pipeline.backends.symmetric_factor import ShiftedSymmetricFactor
 from pipeline.parallel import World
 
 __all__ = ["InertiaCertificate", "certify_by_inertia", "orthonormal_basis", "real_span"]
@@ -127,8 +128,7 @@ def certify_by_inertia(
     vectors: np.ndarray,
     shift: float,
     options_prefix: str = "gapline_cert_",
-    factor_cache: dict[float, Any] | None = None,
-    symmetric: Any = None,
+    factor: ShiftedSymmetricFactor | None = None,
 ) -> InertiaCertificate:
     """Decide whether ``values`` (found eigenvalues, all with real part > ``shift``; their
     right eigenvectors ``vectors``, local rows ``[row, k]``) are all of ``W``'s eigenvalues
@@ -136,11 +136,10 @@ def certify_by_inertia(
 
     ``scaling``: local rows of ``D`` (positive). ``shift``: ``t``, placed inside a gap of the
     found real parts (the caller picks it between the last wanted group and the next one).
-    ``factor_cache``: keeps the factorization of ``t I - S`` per ``t`` for repeated tests
-    (the caller destroys the entries: ``(ksp, matrix, inertia)``). ``symmetric``: ``S``
-    when the caller has built it already (it is copied, not changed).
+    ``factor``: the caller's :class:`ShiftedSymmetricFactor` of this ``S``, refactored at ``t``
+    (the symbolic analysis of the search's factorization is reused; the caller destroys it);
+    without it one is made (options prefix ``options_prefix``) and destroyed here.
     """
-    PETSc = petsc()
     started = time.perf_counter()
     slowest_kept = float(np.min(values.real))
     level = 0.5 * (shift + slowest_kept)
@@ -166,43 +165,23 @@ def certify_by_inertia(
         kappa = np.inf
     bound = residual * (kappa / gap * (1 + left_residual / gap) + 1 / gap) if gap > 0 else np.inf
     # The inertia test.
-    cached = factor_cache.get(shift) if factor_cache is not None else None
-    if cached is None:
-        S = symmetric.copy() if symmetric is not None else symmetric_part(W, scaling)[0]
-        S.scale(-1.0)
-        S.shift(shift)  # M = t I - S
-        S.setOption(PETSc.Mat.Option.SYMMETRIC, True)
-        ksp = PETSc.KSP().create(comm=W.getComm())
-        ksp.setOperators(S)
-        ksp.setType("preonly")
-        pc = ksp.getPC()
-        pc.setType("cholesky")
-        pc.setFactorSolverType("mumps")
-        ksp.setOptionsPrefix(options_prefix)
-        options = PETSc.Options()
-        options.setValue(f"{options_prefix}mat_mumps_icntl_24", 1)  # null pivots: inertia
-        options.setValue(f"{options_prefix}mat_mumps_icntl_13", 1)  # root node on one rank
-        ksp.setFromOptions()
-        factor_started = time.perf_counter()
-        ksp.setUp()
-        factor_seconds = time.perf_counter() - factor_started
-        inertia = pc.getFactorMatrix().getInertia()
-        if factor_cache is not None:
-            factor_cache[shift] = (ksp, S, inertia)
-    else:
-        ksp, S, inertia = cached
-        factor_seconds = 0.0
-    negative, zero, _positive = inertia
-    solution = _solve_block(ksp, S, Q, world)
+    owned = factor is None
+    if owned:
+        S = symmetric_part(W, scaling)[0]
+        factor = ShiftedSymmetricFactor(world, S, options_prefix)
+        S.destroy()
+    before = factor.seconds
+    negative, zero, _positive = factor.at(shift)
+    factor_seconds = factor.seconds - before
+    solution = factor.solve(Q)
     G = gram(world, Q, solution)
     G = 0.5 * (G + G.T)
     g_values = np.linalg.eigvalsh(G) if k else np.zeros(0)
     captured = int(np.sum(g_values < 0))
     tiny_g = bool(k) and float(np.min(np.abs(g_values))) <= 1e-13 * float(
         np.max(np.abs(g_values)))
-    if factor_cache is None:
-        ksp.destroy()
-        S.destroy()
+    if owned:
+        factor.destroy()
     certified = (zero == 0 and negative == captured and not tiny_g and bound < 1.0
                  and not dependent)
     if dependent and k < values.size:
@@ -230,28 +209,3 @@ def certify_by_inertia(
         seconds=time.perf_counter() - started, factor_seconds=factor_seconds, note=note,
         info={"ritz_condition": kappa},
     )
-
-
-def _solve_block(ksp: Any, matrix: Any, columns: np.ndarray, world: World) -> np.ndarray:
-    """``matrix^-1 columns`` with the factorization in ``ksp``: one multi-right-hand-side
-    solve on one process (MUMPS solves a block at a fraction of the cost per column), one
-    solve per column otherwise."""
-    PETSc = petsc()
-    k = columns.shape[1]
-    if world.size == 1 and k > 1:
-        n = columns.shape[0]
-        rhs = PETSc.Mat().createDense((n, k), array=np.asfortranarray(columns))
-        out = PETSc.Mat().createDense((n, k))
-        out.setUp()
-        ksp.getPC().getFactorMatrix().matSolve(rhs, out)
-        result = np.array(out.getDenseArray(), copy=True)
-        rhs.destroy()
-        out.destroy()
-        return result
-    result = np.empty_like(columns)
-    source, target = matrix.createVecs()
-    for j in range(k):  # a loop over columns
-        source.getArray()[:] = columns[:, j]
-        ksp.solve(source, target)
-        result[:, j] = target.getArray(readonly=True)
-    return result

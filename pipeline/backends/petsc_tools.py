@@ -66,13 +66,18 @@ def _apply(matrix: Any, local: np.ndarray, transpose: bool,
 
 
 def gram(world: World, left: np.ndarray, right: np.ndarray) -> np.ndarray:
-    """``left^H right`` summed over ranks (``[k, m]``)."""
-    return world.sum(np.ascontiguousarray(left.conj().T @ right))
+    """``left^H right`` summed over ranks (``[k, m]``). (A real ``left`` is not conjugated:
+    ``conj`` of a real array is a full copy, which costs more than the product.)"""
+    transposed = left.T.conj() if np.iscomplexobj(left) else left.T
+    return world.sum(np.ascontiguousarray(transposed @ right))
 
 
 def global_norms(world: World, columns: np.ndarray) -> np.ndarray:
     """2-norms of the columns of distributed ``[row, k]`` arrays."""
-    local = np.einsum("ij,ij->j", columns.conj(), columns).real
+    if np.iscomplexobj(columns):
+        local = np.einsum("ij,ij->j", columns.conj(), columns).real
+    else:
+        local = np.einsum("ij,ij->j", columns, columns)
     return np.sqrt(world.sum(np.ascontiguousarray(local)))
 
 
@@ -84,7 +89,7 @@ def orthonormalize(world: World, columns: np.ndarray) -> np.ndarray:
         products = gram(world, basis, basis)
         products = 0.5 * (products + products.T)
         factor = np.linalg.cholesky(products)  # products = factor factor^T
-        basis = np.linalg.solve(factor, basis.T).T
+        basis = basis @ np.linalg.inv(factor).T  # basis factor^-T (a small inverse: one gemm)
     return basis
 
 
