@@ -82,7 +82,8 @@ the new one is committed.
 
 Under MPI rank 0 creates the groups and arrays and commits; each rank writes the chunks of
 the state rows it owns (ownership ranges are runs of whole chunks, ``pipeline.parallel``), so
-no two ranks ever write into one chunk.
+no two ranks ever write into one chunk. The state axis is the first one, or the second of
+``[time, state]`` arrays (``ArraySpec.axis``).
 """
 
 from __future__ import annotations
