@@ -82,7 +82,8 @@ the new one is committed.
 
 Under MPI rank 0 creates the groups and arrays and commits; each rank writes the chunks of
 the state rows it owns (ownership ranges are runs of whole chunks, ``pipeline.parallel``), so
-no two ranks ever write into one chunk.
+no two ranks ever write into one chunk. The state axis is the first one, or the second of
+``[time, state]`` arrays (``ArraySpec.axis``).
 """
 
 from __future__ import annotations
@@ -138,9 +139,10 @@ class ArraySpec:
 
     A distributed array (one rank's rows under MPI) sets ``shape`` (the global shape),
     ``offset`` (the first global row held in ``data``) and ``chunk_rows`` (rows per chunk
-    along axis 0, see :func:`pipeline.parallel.state_chunk`): every rank passes its own rows,
-    which cover whole chunks, and writes them itself. Otherwise ``data`` is the whole array
-    and rank 0 writes it.
+    along the state axis, see :func:`pipeline.parallel.state_chunk`): every rank passes its
+    own rows, which cover whole chunks, and writes them itself. ``axis`` is the state axis
+    that ``offset`` counts along: 0 (``[state, ...]``) or 1 (``[time, state]``). Otherwise
+    ``data`` is the whole array and rank 0 writes it.
     """
 
     data: np.ndarray
@@ -149,6 +151,7 @@ class ArraySpec:
     offset: int = 0
     chunk_rows: int | None = None
     ordered: bool = False  # pieces not on chunk boundaries: ranks write one after another
+    axis: int = 0  # the axis that offset and chunk_rows refer to
 
     @property
     def distributed(self) -> bool:
@@ -415,23 +418,29 @@ def _create_array(group: Any, name: str, spec: ArraySpec) -> Any:
 
 
 def _fill_array(array: Any, spec: ArraySpec) -> None:
-    """Write ``spec.data`` at its rows, one whole chunk at a time."""
+    """Write ``spec.data`` at its rows (along ``spec.axis``), one whole chunk at a time."""
     data = np.asarray(spec.data)
     if data.ndim == 0 or data.size == 0:
         if not spec.distributed:
             array[...] = data
         return
-    step = array.chunks[0]
+    axis = spec.axis
+    lead = (slice(None),) * axis  # the axes before the state axis are written whole
+
+    def put(low: int, high: int, first: int) -> None:
+        array[(*lead, slice(low, high))] = data[(*lead, slice(low - first, high - first))]
+
+    step, length = array.chunks[axis], data.shape[axis]
     if spec.ordered:  # align the pieces with the array's chunks
         first = spec.offset
-        bounds = [first, *range((first // step + 1) * step, first + data.shape[0], step),
-                  first + data.shape[0]]
+        bounds = [first, *range((first // step + 1) * step, first + length, step),
+                  first + length]
         for low, high in zip(bounds[:-1], bounds[1:], strict=True):
-            array[low:high] = data[low - first : high - first]
+            put(low, high, first)
         return
-    for start in range(0, data.shape[0], step):
-        stop = min(start + step, data.shape[0])
-        array[spec.offset + start : spec.offset + stop] = data[start:stop]
+    for start in range(0, length, step):
+        stop = min(start + step, length)
+        put(spec.offset + start, spec.offset + stop, spec.offset)
 
 
 def _jsonable(value: Any) -> Any:

@@ -229,20 +229,36 @@ def _run_with(config: Path, store: Path, ranks: int, extra: list[str],
                           cwd=REPO)
 
 
-def test_analysis_under_mpi_is_a_skip_note_then_runs_on_one_process(tmp_path):
-    """analyze/evolve do not run under MPI yet: the 2-rank run commits a skip note (no made-up
-    results), and `--from analyze` on one process then computes them; the entropy
-    production of the biased ring is (u - v) ln(u/v) per unit time (Schnakenberg 1976)."""
+def test_analysis_on_two_ranks_then_again_on_one_process(tmp_path):
+    """analyze runs on 2 ranks (each its own rows): the entropy production of the biased
+    ring is (u - v) ln(u/v) per unit time (Schnakenberg 1976, Rev. Mod. Phys. 48, 571);
+    `--from analyze` on one process over the same store gives the same currents."""
     config = _config(tmp_path, "ring", "slepc")
     store = tmp_path / "s.zarr"
     first = _run_with(config, store, 2, [])
     assert first.returncode == 0, first.stderr[-2000:]
-    assert "does not run under MPI" in first.stderr
-    analysis = zarr.open_group(str(store / "ring" / "analysis"), mode="r")
-    assert analysis.attrs["skipped"] and "channel_flux" not in analysis
+    two = zarr.open_group(str(store / "ring" / "analysis"), mode="r")
+    currents = dict(two.attrs)["currents"]
+    assert dict(two.attrs)["ranks"] == 2
+    np.testing.assert_allclose(currents["entropy_production"],
+                               (1.3 - 0.4) * np.log(1.3 / 0.4), rtol=1e-10)
+    flux, current = two["channel_flux"][:], two["channel_current"][:]
     again = _run_with(config, store, 1, ["--from", "analyze"])
     assert again.returncode == 0, again.stderr[-2000:]
-    currents = dict(zarr.open_group(str(store / "ring" / "analysis"), mode="r").attrs)[
-        "currents"]
-    np.testing.assert_allclose(currents["entropy_production"],
-                               (1.3 - 0.4) * np.log(1.3 / 0.4), rtol=1e-9)
+    one = zarr.open_group(str(store / "ring" / "analysis"), mode="r")
+    assert dict(one.attrs)["ranks"] == 1
+    np.testing.assert_allclose(one["channel_flux"][:], flux, rtol=1e-12)
+    np.testing.assert_allclose(one["channel_current"][:], current, rtol=1e-12)
+    np.testing.assert_allclose(dict(one.attrs)["currents"]["entropy_production"],
+                               currents["entropy_production"], rtol=1e-12)
+
+
+@pytest.mark.parametrize("name", list(CASES))
+def test_two_rank_currents_equal_scipy(stores, name):
+    two, one = stores[name, "slepc-2"]["analysis"], stores[name, "scipy"]["analysis"]
+    scale = float(np.abs(one["channel_flux"][:]).max())
+    for array in ("channel_flux", "channel_current"):
+        assert np.abs(two[array][:] - one[array][:]).max() <= 1e-9 * scale
+    a, b = (dict(group.attrs)["currents"] for group in (two, one))
+    assert a["entropy_production"] == pytest.approx(b["entropy_production"], rel=1e-9,
+                                                    abs=1e-12)

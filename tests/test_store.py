@@ -264,3 +264,23 @@ def test_not_a_store(tmp_path):
     (tmp_path / "junk" / "file.txt").write_text("x")
     with pytest.raises(StoreError, match="not a zarr store"):
         Store(tmp_path / "junk", create=True)
+
+
+@pytest.mark.parametrize("ordered", [False, True])
+def test_pieces_along_the_second_axis_land_at_their_offset(tmp_path, ordered):
+    # [time, state] written in two state pieces as two ranks would (axis 1, offset 0 and 8,
+    # chunks of 8 states; the ordered path cuts a piece that starts mid-chunk): the result
+    # is the whole array, element by element.
+    whole = np.arange(3 * 13, dtype=np.float64).reshape(3, 13)
+    group = zarr.open_group(str(tmp_path / "a.zarr"), mode="w", zarr_format=3)
+    first = pipeline.store.ArraySpec(whole[:, :8], ("time", "state"), shape=(3, 13),
+                                     offset=0, chunk_rows=8, axis=1, ordered=ordered)
+    array = pipeline.store._create_array(group, "p", first)
+    assert array.chunks == (3, 8)
+    cut = 5 if ordered else 8
+    for low, high in ((0, cut), (cut, 13)):
+        piece = pipeline.store.ArraySpec(whole[:, low:high], ("time", "state"),
+                                         shape=(3, 13), offset=low, chunk_rows=8, axis=1,
+                                         ordered=ordered)
+        pipeline.store._fill_array(array, piece)
+    np.testing.assert_array_equal(array[:], whole)

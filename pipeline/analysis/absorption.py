@@ -9,19 +9,26 @@ absorption ``tau`` and the splitting probabilities ``pi_e`` solve the backward e
 
 from __future__ import annotations
 
+from collections.abc import Callable
+
 import numpy as np
 
 __all__ = ["quasi_stationary"]
 
 
-def quasi_stationary(vector: np.ndarray) -> tuple[np.ndarray, float]:
+def quasi_stationary(vector: np.ndarray, total: Callable[[float], float] | None = None
+                     ) -> tuple[np.ndarray, float]:
     """The quasi-stationary law from the slowest right eigenvector of a sub-generator
     (Darroch and Seneta 1967, J. Appl. Prob. 4, 192): real part, sign fixed so the mass is
-    positive, negative rounding clipped, sum 1. Returns ``(law, clipped negative mass)``."""
+    positive, negative rounding clipped, sum 1. Returns ``(law, clipped negative mass)``.
+
+    ``vector`` may be one rank's rows (``[state]``); ``total`` then adds a number over the
+    ranks (``World.sum``) and the law returned is those rows of the global law."""
+    total = total or (lambda x: x)
     real = np.real(np.asarray(vector))
-    if real.sum() < 0:
+    if total(float(real.sum())) < 0:
         real = -real
-    total = float(np.abs(real).sum())
-    negative = float(-real[real < 0].sum()) / max(total, np.finfo(float).tiny)
+    size = total(float(np.abs(real).sum()))
+    negative = total(float(-real[real < 0].sum())) / max(size, np.finfo(float).tiny)
     law = np.clip(real, 0.0, None)
-    return law / law.sum(), negative
+    return law / total(float(law.sum())), negative

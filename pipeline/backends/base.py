@@ -30,6 +30,7 @@ __all__ = [
     "Operator",
     "Stationary",
     "check_column_sums",
+    "flows_from_entries",
     "resolve_method",
 ]
 
@@ -138,6 +139,28 @@ class Currents:
         return self.max_current / self.max_flux if self.max_flux > 0 else 0.0
 
 
+def flows_from_entries(flux: np.ndarray, reverse: np.ndarray, channels: np.ndarray,
+                       count: int, world: Any = None) -> Currents:
+    """:class:`Currents` from the off-diagonal entries ``(i, j)`` of ``W``: ``flux`` ``F_ij =
+    W_ij p_j``, ``reverse`` ``F_ji`` (0 where ``W_ji`` is not stored) and the channel of each
+    entry (float64/int64 ``[entry]``). ``world`` (a :class:`pipeline.parallel.World`) adds up
+    the sums and maxima of every rank's entries; None: these entries are all of ``W``."""
+    current = flux - reverse
+    channel_flux = np.bincount(channels, weights=flux, minlength=count)
+    channel_current = np.bincount(channels, weights=current, minlength=count)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        terms = current * np.log(flux / reverse)
+    terms[(flux == 0) & (reverse == 0)] = 0.0  # no flux either way: no contribution
+    terms[current == 0] = 0.0
+    entropy = 0.5 * float(terms.sum())
+    max_flux, max_current = float(flux.max(initial=0.0)), float(np.abs(current).max(initial=0.0))
+    if world is not None:
+        channel_flux, channel_current = world.sum(channel_flux), world.sum(channel_current)
+        entropy = float(world.sum(entropy))
+        max_flux, max_current = world.max(max_flux), world.max(max_current)
+    return Currents(channel_flux, channel_current, entropy, max_flux, max_current)
+
+
 @dataclass
 class Classes:
     """Communicating classes (strongly connected components of the transition graph).
@@ -196,9 +219,19 @@ class Backend(ABC):
         return BackendError(f"backend {self.name} does not support {what} yet; use "
                             "solve.backend = 'scipy'")
 
+    def local_rows(self, operator: Operator) -> tuple[int, int] | None:
+        """The states ``[start, stop)`` whose rows this process holds (one MPI rank's share);
+        None when it holds every state. State vectors that the analysis methods take and
+        return (``distribution``, ``rhs``, ``start``, their results) are these rows."""
+        return None
+
+    def evolve_method(self, operator: Operator) -> str:
+        """How :meth:`evolve` computes ``exp(tW) p0`` (provenance, one line)."""
+        return f"{self.name}: not implemented"
+
     def currents(self, operator: Operator, distribution: np.ndarray) -> Currents:
         """Fluxes, net currents per channel and entropy production under ``distribution``
-        (float64 ``[state]``, sum 1)."""
+        (float64 ``[state]`` local rows, see :meth:`local_rows`; sum 1 over all states)."""
         raise self._unsupported("currents")
 
     def communicating_classes(self, operator: Operator) -> Classes:
@@ -213,23 +246,24 @@ class Backend(ABC):
 
     def solve_transposed(self, operator: Operator,
                          rhs: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-        """``X`` with ``W^T X = rhs`` (float64 ``[state]`` or ``[state, k]``) and the relative
-        residual ``||W^T x - b||_inf / (||W||_1 ||x||_inf + ||b||_inf)`` per column ``[k]``;
-        used for mean absorption times (``rhs = -1``) and splitting probabilities (``rhs =
-        -exit rates``). Raises SolverError when ``W^T`` is singular."""
+        """``X`` with ``W^T X = rhs`` (float64 ``[state]`` or ``[state, k]``, local rows) and
+        the relative residual ``||W^T x - b||_inf / (||W||_1 ||x||_inf + ||b||_inf)`` per
+        column ``[k]``; used for mean absorption times (``rhs = -1``) and splitting
+        probabilities (``rhs = -exit rates``). Raises SolverError when ``W^T`` is singular."""
         raise self._unsupported("linear solves with W^T")
 
     def evolve(self, operator: Operator, start: np.ndarray, times: np.ndarray) -> np.ndarray:
-        """``p(t) = exp(t W) start`` at sorted ``times >= 0``, float64 ``[time, state]``."""
+        """``p(t) = exp(t W) start`` at sorted ``times >= 0``, float64 ``[time, state]``
+        (local rows of ``start`` in, local rows out)."""
         raise self._unsupported("time evolution")
 
     def mode_expansion(self, operator: Operator, count: int, start: np.ndarray,
                        times: np.ndarray, dense_limit: int = 1024) -> tuple[np.ndarray,
                                                                            np.ndarray]:
         """``sum_k e^{lambda_k t} r_k (l_k^H p0) / (l_k^H r_k)`` over the ``count`` slowest
-        modes (right ``r``, left ``l``), real part, float64 ``[time, state]``, and the
-        eigenvalues used ``[mode]``. Exact when ``count = n_states``, else accurate once
-        ``e^{Re lambda_count t}`` is small."""
+        modes (right ``r``, left ``l``), real part, float64 ``[time, state]`` (local rows),
+        and the eigenvalues used ``[mode]``. Exact when ``count = n_states``, else accurate
+        once ``e^{Re lambda_count t}`` is small."""
         raise self._unsupported("the mode expansion")
 
     def symmetric_slowest_modes(self, operator: Operator, count: int, *,

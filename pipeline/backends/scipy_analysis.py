@@ -16,7 +16,15 @@ import scipy.sparse as sp
 import scipy.sparse.csgraph as csgraph
 import scipy.sparse.linalg as spla
 
-from pipeline.backends.base import Classes, Currents, Modes, Operator, Stationary
+from pipeline.analysis.evolution import mode_sum
+from pipeline.backends.base import (
+    Classes,
+    Currents,
+    Modes,
+    Operator,
+    Stationary,
+    flows_from_entries,
+)
 from pipeline.errors import SolverError
 from pipeline.models.base import RowBlock
 
@@ -43,17 +51,7 @@ class ScipyAnalysis:
         rows, columns, rates, channels = rows[off], columns[off], W.data[off], channels[off]
         flux = rates * p[columns]
         reverse = flux_of(W, columns, rows, p)  # F_ji = W_ji p_i for every entry (i, j)
-        current = flux - reverse
-        count = len(model.channel_names())
-        channel_flux = np.bincount(channels, weights=flux, minlength=count)
-        channel_current = np.bincount(channels, weights=current, minlength=count)
-        with np.errstate(divide="ignore", invalid="ignore"):
-            terms = current * np.log(flux / reverse)
-        terms[(flux == 0) & (reverse == 0)] = 0.0  # no flux either way: no contribution
-        terms[current == 0] = 0.0
-        entropy = 0.5 * float(terms.sum())
-        return Currents(channel_flux, channel_current, entropy,
-                        float(flux.max(initial=0.0)), float(np.abs(current).max(initial=0.0)))
+        return flows_from_entries(flux, reverse, channels, len(model.channel_names()))
 
     def communicating_classes(self, operator: Operator) -> Classes:
         W = operator.handle["W"]
@@ -124,6 +122,10 @@ class ScipyAnalysis:
         residual = misfit / np.maximum(size, np.finfo(float).tiny)
         return (solution, residual) if rhs.ndim == 2 else (solution[:, 0], residual)
 
+    def evolve_method(self, operator: Operator) -> str:
+        return (f"{self.name}: Krylov action of exp(tW) (expm_multiply, Al-Mohy and Higham "
+                "2011)")
+
     def evolve(self, operator: Operator, start: np.ndarray, times: np.ndarray) -> np.ndarray:
         W = operator.handle["W"]
         times = np.asarray(times, dtype=np.float64)
@@ -163,10 +165,7 @@ class ScipyAnalysis:
                                                      1e-12)
             nearest = np.argmin(np.abs(left_values[None, :] - values[:, None]), axis=1)
             left = left_all[:, nearest]
-        pairing = np.einsum("ij,ij->j", left.conj(), right)
-        weights = (left.conj().T @ np.asarray(start, dtype=np.float64)) / pairing
-        growth = np.exp(np.outer(np.asarray(times, dtype=np.float64), values))
-        return np.real((growth * weights[None, :]) @ right.T), values
+        return mode_sum(values, left, right, start, times), values
 
     def symmetric_slowest_modes(self, operator: Operator, count: int, *,
                                 tolerance: float = 1e-12,

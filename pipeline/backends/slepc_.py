@@ -36,6 +36,7 @@ from pipeline.backends.petsc_tools import (
     petsc,
     start_vector,
 )
+from pipeline.backends.slepc_analysis import SlepcAnalysis
 from pipeline.errors import BackendError, ModelError, SolverError
 from pipeline.models.base import Model, validate_block
 from pipeline.modes import grouping_tolerance, take_slowest
@@ -79,7 +80,7 @@ def _unavailable() -> str | None:
     return None
 
 
-class SlepcBackend(Backend):
+class SlepcBackend(SlepcAnalysis, Backend):
     name = "slepc"
     description = ("PETSc/SLEPc under MPI: distributed AIJ, Krylov–Schur + shift-and-invert "
                    "(MUMPS or GMRES), inertia certificate")
@@ -833,10 +834,11 @@ class SlepcBackend(Backend):
                 "Krylov–Schur on W^T with transposed solves (the right vectors did not fit)")
 
     # -- analysis (the analyze and evolve stages) -----------------------------------------
-    # On one process these run the scipy backend's methods on the same matrix in CSR form
-    # (the local rows of one rank are all of W); under MPI only the communicating classes
-    # are available (they are needed before the stationary solve), the rest refuse in one
-    # line instead of gathering state vectors.
+    # Currents, transposed solves, exp(tW) p0 and the mode expansion are distributed
+    # (slepc_analysis.py, the same code on 1 and P ranks). On one process the communicating
+    # classes, class stationary laws and the symmetrized solve run the scipy backend's
+    # methods on the same matrix in CSR form; under MPI the classes gather the pattern on
+    # rank 0 and the class laws refuse in one line.
 
     def _one_process_view(self, operator: Operator, what: str) -> Operator:
         if self.world.size > 1:
@@ -854,10 +856,6 @@ class SlepcBackend(Backend):
         from pipeline.backends.scipy_ import ScipyBackend
 
         return ScipyBackend()
-
-    def currents(self, operator: Operator, distribution: np.ndarray):
-        return self._scipy().currents(self._one_process_view(operator, "analyze.currents"),
-                                      distribution)
 
     def communicating_classes(self, operator: Operator):
         """Strongly connected components of the transition graph. Under MPI the pattern of
@@ -906,19 +904,6 @@ class SlepcBackend(Backend):
                          dense_limit: int = 1024):
         return self._scipy().class_stationary(
             self._one_process_view(operator, "solve.closed_classes"), states, dense_limit)
-
-    def solve_transposed(self, operator: Operator, rhs: np.ndarray):
-        return self._scipy().solve_transposed(
-            self._one_process_view(operator, "analyze.absorption"), rhs)
-
-    def evolve(self, operator: Operator, start: np.ndarray, times: np.ndarray) -> np.ndarray:
-        return self._scipy().evolve(self._one_process_view(operator, "evolve"), start, times)
-
-    def mode_expansion(self, operator: Operator, count: int, start: np.ndarray,
-                       times: np.ndarray, dense_limit: int = 1024):
-        return self._scipy().mode_expansion(
-            self._one_process_view(operator, "evolve.modes"), count, start, times,
-            dense_limit)
 
     def symmetric_slowest_modes(self, operator: Operator, count: int, *,
                                 tolerance: float = 1e-12, vectors: bool = False,

@@ -5,7 +5,9 @@ from __future__ import annotations
 from dataclasses import dataclass, field
 from typing import TYPE_CHECKING, Any
 
-from pipeline.store import GroupData
+import numpy as np
+
+from pipeline.store import ArraySpec, GroupData
 
 if TYPE_CHECKING:
     from pipeline.backends.base import Backend, Operator
@@ -13,7 +15,7 @@ if TYPE_CHECKING:
     from pipeline.models.base import Model
     from pipeline.store import Store
 
-__all__ = ["RunContext", "StageOutput"]
+__all__ = ["RunContext", "StageOutput", "state_array"]
 
 
 @dataclass
@@ -45,3 +47,18 @@ class StageOutput:
     groups: dict[str, GroupData]
     record: dict[str, Any] = field(default_factory=dict)
     passed: bool = True
+
+
+def state_array(data: np.ndarray, dims: tuple[str, ...], rows: tuple[int, int] | None,
+                n_states: int) -> ArraySpec:
+    """An array with a ``state`` axis (first or second): whole (``rows`` None), or this
+    rank's rows ``[start, stop)`` of it, which every rank writes itself."""
+    from pipeline.parallel import state_chunk, world
+
+    if rows is None:
+        return ArraySpec(data, dims)
+    axis = dims.index("state")
+    shape = list(data.shape)
+    shape[axis] = n_states
+    return ArraySpec(data, dims, shape=tuple(shape), offset=rows[0], axis=axis,
+                     chunk_rows=state_chunk(n_states, world().size))

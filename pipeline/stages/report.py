@@ -82,9 +82,6 @@ def analysis_lines(store: Store, run: str) -> list[str]:
     """Relaxation, classes, currents, absorption and evolution lines of ``gapline show``."""
     lines: list[str] = []
     analysis = store.group(run, "analysis", required=False)
-    if analysis is not None and analysis.attrs.get("skipped"):
-        lines.append(f"  analysis: {analysis.attrs['skipped']}")
-        analysis = None
     if analysis is not None:
         a = dict(analysis.attrs)
         r = a.get("relaxation", {})

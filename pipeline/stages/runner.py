@@ -16,8 +16,8 @@ from pipeline.models import build_model
 from pipeline.parallel import World, world
 from pipeline.progress import log
 from pipeline.stages import STAGE_NAMES, STAGES
-from pipeline.stages.base import RunContext, StageOutput
-from pipeline.store import STAGE_GROUPS, GroupData, Store
+from pipeline.stages.base import RunContext
+from pipeline.store import STAGE_GROUPS, Store
 
 __all__ = [
     "RunOutcome",
@@ -152,9 +152,7 @@ def run_pipeline(
         executed.append(stage.NAME)
         log(f"stage {stage.NAME}: started")
         started = time.perf_counter()
-        if parallel.size > 1 and not getattr(stage, "MPI_READY", True):
-            output = _skipped_under_mpi(stage, parallel.size)
-        elif getattr(stage, "COLLECTIVE", False):
+        if getattr(stage, "COLLECTIVE", False):
             output = stage.run(ctx)
         else:  # reads the store: once, on rank 0; every rank gets the outcome
             output = parallel.on_root(lambda stage=stage: stage.run(ctx))
@@ -172,19 +170,6 @@ def run_pipeline(
         if stage.NAME == "verify":
             verified = output.passed
     return RunOutcome(run=run, store=str(store.path), stages_run=executed, verified=verified)
-
-
-def _skipped_under_mpi(stage: Any, ranks: int) -> StageOutput:
-    """A committed note for a stage that does not run under MPI yet (its results are not
-    made up; rerun the stage on one process to get them)."""
-    from pipeline.progress import warn
-
-    note = (f"stage {stage.NAME} does not run under MPI in this version ({ranks} ranks); "
-            f"rerun it on one process: gapline run CONFIG --from {stage.NAME}")
-    warn(note)
-    groups = {name: GroupData(attrs={"requested": False, "skipped": note})
-              for name in STAGE_GROUPS[stage.NAME]}
-    return StageOutput(groups, record={"skipped": note})
 
 
 def _peak_memory(parallel: World) -> list[float]:

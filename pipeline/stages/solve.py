@@ -8,9 +8,9 @@ import numpy as np
 
 from pipeline.errors import SolverError
 from pipeline.observables import stationary_expectations
-from pipeline.parallel import state_chunk, world
+from pipeline.parallel import world
 from pipeline.progress import log, warn
-from pipeline.stages.base import RunContext, StageOutput
+from pipeline.stages.base import RunContext, StageOutput, state_array
 from pipeline.store import ArraySpec, GroupData
 
 NAME = "solve"
@@ -96,7 +96,7 @@ def run(ctx: RunContext) -> StageOutput:
                 "(ill-conditioned, non-normal generator): small residuals do not make these "
                 "eigenvalues accurate")
     if modes.vectors is not None:
-        spectrum.arrays["vectors"] = _state_array(modes.vectors, ("state", "mode"),
+        spectrum.arrays["vectors"] = state_array(modes.vectors, ("state", "mode"),
                                                   modes.vector_rows, operator.n_states)
     if not operator.check.conserving and modes.values.size:
         # 1^T W v_0 = lambda_0 1^T v_0: the slowest mode (the quasi-stationary state) loses
@@ -110,7 +110,7 @@ def run(ctx: RunContext) -> StageOutput:
         result = backend.stationary(operator, dense_limit=settings.dense_limit)
         observed = stationary_expectations(ctx.model, result.distribution, rows=result.rows)
         groups["stationary"] = GroupData(
-            arrays={"distribution": _state_array(result.distribution, ("state",),
+            arrays={"distribution": state_array(result.distribution, ("state",),
                                                  result.rows, operator.n_states),
                     **{name: ArraySpec(values, (dim,)) for name, (dim, values, _) in
                        observed.items()}},
@@ -130,16 +130,6 @@ def run(ctx: RunContext) -> StageOutput:
         log("solve: W is a sub-generator (absorbing boundary): no stationary distribution")
     seconds = time.perf_counter() - started
     return StageOutput(groups, record={"seconds": seconds, "certified": modes.certified})
-
-
-def _state_array(data: np.ndarray, dims: tuple[str, ...], rows: tuple[int, int] | None,
-                 n_states: int) -> ArraySpec:
-    """A state-axis array: whole, or (under MPI) this rank's rows of it."""
-    if rows is None:
-        return ArraySpec(data, dims)
-    ranks = world().size
-    return ArraySpec(data, dims, shape=(n_states, *data.shape[1:]), offset=rows[0],
-                     chunk_rows=state_chunk(n_states, ranks))
 
 
 def _closed_classes(ctx: RunContext):
