@@ -581,9 +581,11 @@ class SlepcBackend(SlepcAnalysis, Backend):
         del balanced, left
         values_kept, residuals_kept = values[chosen], residuals[chosen]
         solver = operator.handle.get("shifted") or {
-            "shift": None, "setup_seconds": 0.0, "solves": 0,
-            "inner": {"inner_solver": "direct", "factorization": "Cholesky of sigma I - S "
-                      "(MUMPS)"}, "ksp_type": "preonly", "pc_type": "cholesky"}
+            "shift": None, "setup_seconds": sum(r.get("factor_seconds", 0.0) for r in rounds),
+            "solves": int(sum(r.get("solved_columns", 0) for r in rounds)),
+            "inner": {"inner_solver": "direct", "factorization": "LDL^T of sigma I - S "
+                      "(MUMPS), refactored at the certificate's shift"},
+            "ksp_type": "preonly", "pc_type": "cholesky"}
         info = {
             **self._provenance(operator),
             "searched": int(values.size),
@@ -611,7 +613,7 @@ class SlepcBackend(SlepcAnalysis, Backend):
             values=values_kept.astype(np.complex128),
             residuals=residuals_kept,
             vectors=local[:, chosen] if want_vectors else None,
-            method=(("Lanczos (SLEPc Krylov–Schur, symmetric) on the symmetric part of the "
+            method=(("block Lanczos on the shifted inverse of the symmetric part of the "
                      "balanced generator + Rayleigh–Ritz on W, inertia certificate")
                     if path == "symmetric part" else
                     (f"Krylov–Schur (SLEPc) on the shifted inverse "
@@ -720,7 +722,8 @@ class SlepcBackend(SlepcAnalysis, Backend):
                 self.world, factor.solve, start_block(start, stop, width), deflation,
                 tolerances, s_residuals, estimate_scale,
                 max_columns=max(LANCZOS_MAX_COLUMNS, 4 * nev), dimension=n)
-            keep_new = search.residuals <= tolerances
+            # (fewer Ritz pairs than asked when the whole complement was spanned)
+            keep_new = search.residuals <= tolerances[:search.theta.size]
             new = search.vectors[:, keep_new]
             s_values = np.concatenate([s_values, above - 1.0 / search.theta[keep_new]])
             found = np.column_stack([found, new])
