@@ -51,18 +51,25 @@ def apply_transpose(matrix: Any, local: np.ndarray,
 def _apply(matrix: Any, local: np.ndarray, transpose: bool,
            work: tuple[Any, Any] | None) -> np.ndarray:
     source, target = work if work is not None else matrix.createVecs()
+    if transpose:
+        source, target = target, source  # W^T maps the row layout to the column layout
     columns = local.reshape(local.shape[0], -1)
-    out = np.empty(columns.shape, dtype=np.result_type(columns.dtype, np.float64))
-    for j in range(columns.shape[1]):  # a loop over vectors, not states
-        parts = [columns[:, j].real, columns[:, j].imag] if np.iscomplexobj(columns) else [
-            columns[:, j]]
-        results = []
-        for part in parts:
-            source.getArray()[:] = part
-            (matrix.multTranspose if transpose else matrix.mult)(source, target)
-            results.append(target.getArray(readonly=True).copy())
-        out[:, j] = results[0] + 1j * results[1] if len(results) == 2 else results[0]
-    return out.reshape(local.shape)
+    complex_ = np.iscomplexobj(columns)
+    # contiguous real columns in, contiguous columns out: no strided copies per column
+    real = np.asfortranarray(np.hstack([columns.real, columns.imag]) if complex_ else columns,
+                             dtype=np.float64)
+    out = np.empty((target.getLocalSize(), real.shape[1]), order="F")
+    product = matrix.multTranspose if transpose else matrix.mult
+    for j in range(real.shape[1]):  # a loop over vectors, not states
+        source.placeArray(real[:, j])
+        target.placeArray(out[:, j])
+        product(source, target)
+        source.resetArray()
+        target.resetArray()
+    if complex_:
+        k = columns.shape[1]
+        out = out[:, :k] + 1j * out[:, k:]
+    return out.reshape(target.getLocalSize(), *local.shape[1:])
 
 
 def gram(world: World, left: np.ndarray, right: np.ndarray) -> np.ndarray:
@@ -72,10 +79,23 @@ def gram(world: World, left: np.ndarray, right: np.ndarray) -> np.ndarray:
     return world.sum(np.ascontiguousarray(transposed @ right))
 
 
+def column_dots(world: World, left: np.ndarray, right: np.ndarray) -> np.ndarray:
+    """``sum_i conj(left[i, j]) right[i, j]`` over all ranks, per column (from the real and
+    imaginary views: no conjugated copy)."""
+    if not (np.iscomplexobj(left) or np.iscomplexobj(right)):
+        return world.sum(np.ascontiguousarray(np.einsum("ij,ij->j", left, right)))
+    lr, li = left.real, (left.imag if np.iscomplexobj(left) else np.zeros_like(left))
+    rr, ri = right.real, (right.imag if np.iscomplexobj(right) else np.zeros_like(right))
+    real = np.einsum("ij,ij->j", lr, rr) + np.einsum("ij,ij->j", li, ri)
+    imag = np.einsum("ij,ij->j", lr, ri) - np.einsum("ij,ij->j", li, rr)
+    return world.sum(np.ascontiguousarray(real + 1j * imag))
+
+
 def global_norms(world: World, columns: np.ndarray) -> np.ndarray:
     """2-norms of the columns of distributed ``[row, k]`` arrays."""
-    if np.iscomplexobj(columns):
-        local = np.einsum("ij,ij->j", columns.conj(), columns).real
+    if np.iscomplexobj(columns):  # |z|^2 from the real and imaginary views, no conj copy
+        local = (np.einsum("ij,ij->j", columns.real, columns.real)
+                 + np.einsum("ij,ij->j", columns.imag, columns.imag))
     else:
         local = np.einsum("ij,ij->j", columns, columns)
     return np.sqrt(world.sum(np.ascontiguousarray(local)))

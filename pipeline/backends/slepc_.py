@@ -30,6 +30,7 @@ from pipeline.backends.inverse_iteration import STATIONARY_TARGET, inverse_itera
 from pipeline.backends.petsc_tools import (
     apply,
     apply_transpose,
+    column_dots,
     global_norms,
     gram,
     normalize_columns,
@@ -740,7 +741,8 @@ class SlepcBackend(SlepcAnalysis, Backend):
             ritz, coefficients = np.linalg.eig(gram(self.world, Q, WbQ))
             vectors = normalize_columns(self.world, (Q @ coefficients) * scaling[:, None],
                                         start)
-            values = self._rayleigh_quotients(W, vectors)
+            # the Ritz values are the Rayleigh quotients of the balanced Ritz vectors
+            values = ritz.astype(np.complex128)
             chosen, _ = take_slowest(values, count, grouping_tolerance(values,
                                                                        operator.check.norm1))
             threshold = float(values[chosen].real.min())
@@ -778,11 +780,7 @@ class SlepcBackend(SlepcAnalysis, Backend):
 
     def _rayleigh_quotients(self, W: Any, local: np.ndarray) -> np.ndarray:
         products = apply(W, local)
-        top = self.world.sum(np.ascontiguousarray(np.einsum("ij,ij->j", local.conj(),
-                                                            products)))
-        bottom = self.world.sum(np.ascontiguousarray(np.einsum("ij,ij->j", local.conj(),
-                                                               local).real))
-        return top / bottom
+        return column_dots(self.world, local, products) / global_norms(self.world, local) ** 2
 
     def _residuals(self, W: Any, values: np.ndarray, local: np.ndarray, scale: float,
                    scaling: np.ndarray | None = None) -> np.ndarray:
@@ -793,8 +791,7 @@ class SlepcBackend(SlepcAnalysis, Backend):
         else:
             difference = (apply(W, local * scaling[:, None]) / scaling[:, None]
                           - local * values[None, :])
-        local_sq = np.einsum("ij,ij->j", difference.conj(), difference).real
-        return np.sqrt(self.world.sum(np.ascontiguousarray(local_sq))) / max(scale, 1e-300)
+        return global_norms(self.world, difference) / max(scale, 1e-300)
 
     def _balancing(self, values: np.ndarray, local: np.ndarray) -> np.ndarray:
         """Local rows of ``D = diag(sqrt(p))``, ``p`` the stationary (Perron) vector: the
