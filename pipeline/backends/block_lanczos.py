@@ -104,9 +104,12 @@ def block_lanczos_largest(
             product = product - previous @ coupling[-1].T
         product = _project(world, product, deflation, basis)
         scale = max(scale, float(np.abs(np.linalg.eigvalsh(A)).max(initial=0.0)))
-        full = basis.size + width > max_columns
+        remaining = max_columns - basis.size
+        full = remaining <= 0
+        # the last block may be narrower: it then ends exactly at max_columns (when that is
+        # the whole complement, the product has no more directions than fit)
         new, B = (None, None) if full else _next_block(world, product, deflation, basis,
-                                                       scale, width)
+                                                       scale, min(width, remaining))
         T = _block_tridiagonal(diagonal, coupling)
         values, vectors = np.linalg.eigh(T)
         order = np.argsort(values)[::-1][:m]
@@ -173,20 +176,24 @@ def _project(world: World, block: np.ndarray, deflation: np.ndarray,
 
 def _next_block(world: World, product: np.ndarray, deflation: np.ndarray,
                 basis: _Basis, scale: float,
-                width: int) -> tuple[np.ndarray | None, np.ndarray | None]:
-    """``product = V_{j+1} B_j`` with orthonormal ``V_{j+1}``; directions where the
-    product vanishes (an invariant subspace was reached) are replaced by fresh directions
-    orthogonal to everything, with zero coupling. ``None`` when no fresh direction is left."""
+                limit: int) -> tuple[np.ndarray | None, np.ndarray | None]:
+    """``product = V_{j+1} B_j`` with orthonormal ``V_{j+1}`` of at most ``limit`` columns
+    (the strongest directions of ``product``); directions where the product vanishes (an
+    invariant subspace was reached) are replaced by fresh directions orthogonal to
+    everything, with zero coupling. ``None`` when no fresh direction is left."""
+    width = product.shape[1]
     products = gram(world, product, product)
     values, rotation = np.linalg.eigh(0.5 * (products + products.T))
-    values = np.maximum(values, 0.0)
-    alive = np.sqrt(values) > 1e-12 * max(scale, np.finfo(float).tiny)
+    values, rotation = np.maximum(values[::-1], 0.0), rotation[:, ::-1]  # strongest first
+    alive = np.flatnonzero(np.sqrt(values) > 1e-12 * max(scale, np.finfo(float).tiny))
+    alive = alive[:limit]
     directions = product @ (rotation[:, alive] / np.sqrt(values[alive]))
-    coupling = np.zeros((width, width))
-    coupling[:alive.sum()] = (np.sqrt(values[alive])[:, None] * rotation[:, alive].T)
-    if not alive.all():  # the product is orthogonal to everything already; fresh ones not
+    coupling = np.zeros((limit, width))
+    coupling[:alive.size] = np.sqrt(values[alive])[:, None] * rotation[:, alive].T
+    dead = limit - alive.size
+    if dead:  # the product is orthogonal to everything already; fresh ones are not
         start, stop = _rows(world, product.shape[0])
-        fresh = start_block(start, stop, width + basis.size + 3)[:, -int((~alive).sum()):]
+        fresh = start_block(start, stop, width + basis.size + 3)[:, -dead:]
         directions = np.column_stack([directions, _project(world, fresh, deflation, basis)])
     new = _orthonormal(world, directions, coupling)
     if new is None:
