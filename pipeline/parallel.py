@@ -90,6 +90,12 @@ class World:
             return [value]
         return self.comm.gather(value, root=0)
 
+    def scatter(self, values: list[Any] | None) -> Any:
+        """Item ``r`` of rank 0's ``values`` (one per rank) on rank ``r``."""
+        if self.comm is None or self.size == 1:
+            return values[0]
+        return self.comm.scatter(values, root=0)
+
     def allgather(self, value: Any) -> list[Any]:
         if self.comm is None or self.size == 1:
             return [value]

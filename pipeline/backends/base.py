@@ -165,16 +165,28 @@ def flows_from_entries(flux: np.ndarray, reverse: np.ndarray, channels: np.ndarr
 class Classes:
     """Communicating classes (strongly connected components of the transition graph).
 
-    labels : int64 ``[state]``, class of each state (0..count-1).
-    closed : bool ``[class]``, no transition (and no leak) leaves the class.
+    labels : int64 ``[state]``, class of each state (0..count-1): of the states ``rows``
+        when set (one MPI rank's share), else of every state.
+    closed : bool ``[class]``, no transition (and no leak) leaves the class (every class).
+    rows : ``(start, stop)`` when ``labels`` holds only these states; None for all.
     """
 
     labels: np.ndarray
     closed: np.ndarray
+    rows: tuple[int, int] | None = None
 
     @property
     def count(self) -> int:
         return int(self.closed.size)
+
+    def labels_of(self, start: int, stop: int) -> np.ndarray:
+        """Labels of the states ``[start, stop)``: this process's rows, held or sliced."""
+        if self.rows is None:
+            return self.labels[start:stop]
+        if tuple(self.rows) != (start, stop):
+            raise RuntimeError(f"classes hold the labels of rows {self.rows}, not "
+                               f"[{start}, {stop})")
+        return self.labels
 
 
 class Backend(ABC):
@@ -240,8 +252,10 @@ class Backend(ABC):
 
     def class_stationary(self, operator: Operator, states: np.ndarray,
                          dense_limit: int = 1024) -> Stationary:
-        """Stationary law of ``W`` restricted to a closed class ``states`` (int64 indices);
-        the distribution is over those states, in that order."""
+        """Stationary law of ``W`` restricted to a closed class: ``states`` (int64, sorted)
+        are the class's states among :meth:`local_rows` (the whole class on one process);
+        the distribution is over those states, in that order (``rows``: the local rows).
+        Collective under MPI: every rank passes its part of the same class."""
         raise self._unsupported("stationary laws of closed classes")
 
     def solve_transposed(self, operator: Operator,

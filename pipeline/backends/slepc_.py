@@ -835,10 +835,9 @@ class SlepcBackend(SlepcAnalysis, Backend):
 
     # -- analysis (the analyze and evolve stages) -----------------------------------------
     # Currents, transposed solves, exp(tW) p0 and the mode expansion are distributed
-    # (slepc_analysis.py, the same code on 1 and P ranks). On one process the communicating
-    # classes, class stationary laws and the symmetrized solve run the scipy backend's
-    # methods on the same matrix in CSR form; under MPI the classes gather the pattern on
-    # rank 0 and the class laws refuse in one line.
+    # (slepc_analysis.py, the same code on 1 and P ranks), and so are the communicating
+    # classes and class stationary laws (slepc_classes.py). On one process the symmetrized
+    # solve runs the scipy backend's method on the same matrix in CSR form.
 
     def _one_process_view(self, operator: Operator, what: str) -> Operator:
         if self.world.size > 1:
@@ -856,54 +855,6 @@ class SlepcBackend(SlepcAnalysis, Backend):
         from pipeline.backends.scipy_ import ScipyBackend
 
         return ScipyBackend()
-
-    def communicating_classes(self, operator: Operator):
-        """Strongly connected components of the transition graph. Under MPI the pattern of
-        the positive off-diagonal rates (4 bytes per transition) is gathered on rank 0,
-        which computes the classes (scipy.sparse.csgraph) and shares the labels."""
-        if self.world.size == 1:
-            return self._scipy().communicating_classes(
-                self._one_process_view(operator, "classes"))
-        from pipeline.backends.base import Classes
-
-        W = operator.handle["W"]
-        start, stop = operator.handle["rows"]
-        indptr, indices, data = W.getValuesCSR()
-        rows = np.repeat(np.arange(start, stop, dtype=np.int64), np.diff(indptr))
-        keep = (data > 0) & (indices != rows)
-        ones, sums = W.createVecs()
-        ones.set(1.0)
-        W.multTranspose(ones, sums)
-        leak = sums.getArray(readonly=True).copy()
-        pieces = self.world.gather((rows[keep].astype(np.int32 if operator.n_states < 2**31
-                                                      else np.int64),
-                                    indices[keep], leak))
-        result = None
-        if self.world.is_root:
-            import scipy.sparse as sparse
-            import scipy.sparse.csgraph as csgraph
-
-            n = operator.n_states
-            target = np.concatenate([piece[0] for piece in pieces])
-            source = np.concatenate([piece[1] for piece in pieces])
-            leaks = np.concatenate([piece[2] for piece in pieces])
-            del pieces
-            graph = sparse.csr_matrix((np.ones(target.size, dtype=np.int8), (target, source)),
-                                      shape=(n, n))
-            count, labels = csgraph.connected_components(graph, directed=True,
-                                                         connection="strong")
-            labels = labels.astype(np.int64)
-            leaving = labels[target] != labels[source]
-            has_exit = np.bincount(labels[source[leaving]], minlength=count) > 0
-            leaky = np.bincount(labels, weights=np.minimum(leaks, 0.0), minlength=count) < -(
-                operator.check.tolerance)
-            result = Classes(labels, ~(has_exit | leaky))
-        return self.world.bcast(result)
-
-    def class_stationary(self, operator: Operator, states: np.ndarray,
-                         dense_limit: int = 1024):
-        return self._scipy().class_stationary(
-            self._one_process_view(operator, "solve.closed_classes"), states, dense_limit)
 
     def symmetric_slowest_modes(self, operator: Operator, count: int, *,
                                 tolerance: float = 1e-12, vectors: bool = False,

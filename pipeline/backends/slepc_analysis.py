@@ -11,6 +11,7 @@ or a whole vector except the mode expansion up to ``solve.dense_limit`` states.
 - ``exp(tW) p0``: SLEPc's MFN, Expokit (Sidje 1998, ACM Trans. Math. Softw. 24, 130: Krylov
   projection with time stepping) by default; ``[solve.petsc] mfn_type = "krylov"`` selects
   the restarted Krylov method.
+- communicating classes and per-class stationary laws: :mod:`pipeline.backends.slepc_classes`.
 - mode expansion: right vectors from ``slowest_modes``, left ones from Krylov–Schur with
   shift-and-invert on ``W^T`` (dense ``geev`` of the gathered ``W`` up to the dense limit).
 """
@@ -24,6 +25,7 @@ import numpy as np
 from pipeline.analysis.evolution import mode_sum
 from pipeline.backends.base import Currents, Operator, flows_from_entries
 from pipeline.backends.petsc_tools import apply_transpose, petsc
+from pipeline.backends.slepc_classes import SlepcClasses
 from pipeline.errors import SolverError
 from pipeline.models.base import RowBlock
 
@@ -35,8 +37,9 @@ MFN_TOLERANCE = 1e-14
 PAIRING_TOLERANCE = 1e-8
 
 
-class SlepcAnalysis:
-    """The analysis methods of the Backend interface on a distributed PETSc ``W``."""
+class SlepcAnalysis(SlepcClasses):
+    """The analysis methods of the Backend interface on a distributed PETSc ``W`` (classes
+    and class stationary laws from :class:`SlepcClasses`)."""
 
     world: Any
     name: str

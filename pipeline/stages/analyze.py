@@ -52,11 +52,12 @@ def run(ctx: RunContext) -> StageOutput:
     arrays: dict[str, ArraySpec] = {}
 
     classes = backend.communicating_classes(operator)
-    closed_of_state = classes.closed[classes.labels]
+    labels = classes.labels_of(start, stop)
+    transient = int(world().sum(int((~classes.closed[labels]).sum())))
     attrs["classes"] = {"count": classes.count, "closed": int(classes.closed.sum()),
-                        "transient_states": int((~closed_of_state).sum()),
+                        "transient_states": transient,
                         "method": "strongly connected components of the graph j -> i"}
-    arrays["class_of_state"] = ArraySpec(classes.labels, ("state",))
+    arrays["class_of_state"] = state_array(labels, ("state",), rows, operator.n_states)
     arrays["class_closed"] = ArraySpec(classes.closed, ("class",))
 
     if conserving:

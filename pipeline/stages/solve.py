@@ -148,22 +148,27 @@ def _closed_classes(ctx: RunContext):
 
 def _class_stationary(ctx: RunContext, classes) -> GroupData:
     """One stationary law per closed class, as ``class_distributions [class, state]``
-    (zero outside the class) with the class label of each row."""
+    (zero outside the class) with the class label of each row. Under MPI each rank solves
+    its part of every class (collectively) and writes the state chunks it owns."""
+    backend, operator = ctx.backend, ctx.operator
     closed = np.flatnonzero(classes.closed)
-    n = ctx.operator.n_states
-    laws = np.zeros((closed.size, n))
+    n = operator.n_states
+    rows = backend.local_rows(operator)  # None: this process holds every state
+    start, stop = rows or (0, n)
+    labels = classes.labels_of(start, stop)
+    laws = np.zeros((closed.size, stop - start))
     residuals, methods = [], []
     for row, label in enumerate(closed):  # a loop over closed classes
-        states = np.flatnonzero(classes.labels == label)
-        result = ctx.backend.class_stationary(ctx.operator, states,
-                                              dense_limit=ctx.config.solve.dense_limit)
-        laws[row, states] = result.distribution
+        local = np.flatnonzero(labels == label)
+        result = backend.class_stationary(operator, start + local,
+                                          dense_limit=ctx.config.solve.dense_limit)
+        laws[row, local] = result.distribution
         residuals.append(result.residual)
         methods.append(result.method)
     return GroupData(
-        arrays={"class_distributions": ArraySpec(laws, ("class", "state")),
+        arrays={"class_distributions": state_array(laws, ("class", "state"), rows, n),
                 "class_labels": ArraySpec(closed.astype(np.int64), ("class",))},
-        attrs={"backend": ctx.backend.name, "method": "; ".join(sorted(set(methods))),
+        attrs={"backend": backend.name, "method": "; ".join(sorted(set(methods))),
                "closed_classes": int(closed.size), "residuals": residuals,
                "residual": float(max(residuals)),
                "residual_definition": "||W_c p_c||_1 / ||W||_1 on each closed class c"},
