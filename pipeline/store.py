@@ -212,6 +212,11 @@ class Store:
     def _open_root(self, mode: str):
         zarr = _zarr()
         try:
+            if mode == "a" and not (self.path / "zarr.json").exists():
+                # a new store's root metadata is written once, with its marker attribute, so
+                # a concurrent reader never sees a root without it
+                return zarr.open_group(str(self.path), mode=mode, zarr_format=3,
+                                       attributes={"gapline_store": LAYOUT_VERSION})
             return zarr.open_group(str(self.path), mode=mode, zarr_format=3)
         except (zarr.errors.ContainsArrayError, zarr.errors.NodeTypeValidationError,
                 json.JSONDecodeError, UnicodeDecodeError) as exc:
