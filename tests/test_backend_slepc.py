@@ -262,3 +262,26 @@ class _BrokenModel(Model):
 def test_bad_rows_give_a_model_error():
     with pytest.raises(ModelError):
         SlepcBackend().assemble(_BrokenModel())
+
+
+def test_reducible_generator_is_searched_unbalanced():
+    """Two closed classes and transient states (the stationary law is not unique and
+    vanishes on the transient states): with ``irreducible = False`` the search keeps
+    ``D = I`` and finds the slowest eigenvalues of the dense LAPACK spectrum (numpy.linalg
+    .eigvals, the reference), the double 0 included; balancing by the noise of ``p`` on the
+    transient states returned a spurious value here."""
+    import scipy.sparse as sp
+
+    from pipeline.models.matrix import UserMatrix
+
+    from .test_mpi_classes import generator
+
+    W, _ = generator()
+    exact = sorted(np.linalg.eigvals(W), key=lambda z: (-z.real, z.imag))[:4]
+    backend = SlepcBackend()
+    operator = backend.assemble(UserMatrix(sp.csr_matrix(W)))
+    operator.irreducible = False
+    modes = backend.slowest_modes(operator, 4, method="shift-invert", tolerance=1e-10)
+    np.testing.assert_allclose(np.sort_complex(modes.values), np.sort_complex(exact),
+                               atol=1e-8)
+    assert modes.residuals.max() <= 1e-8

@@ -58,6 +58,9 @@ class Operator:
     seconds: float
     handle: Any = field(repr=False, default=None)
     info: dict[str, Any] = field(default_factory=dict)
+    #: one communicating class (True), several (False: the stationary law vanishes on
+    #: transient states or is not unique, so a backend must not balance by it), unknown (None)
+    irreducible: bool | None = None
 
 
 @dataclass

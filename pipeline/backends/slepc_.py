@@ -371,7 +371,7 @@ class SlepcBackend(SlepcAnalysis, Backend):
 
     def _eigensolve(self, operator: Operator, nev: int, ncv: int, tolerance: float,
                     initial: np.ndarray | None, stationary: np.ndarray | None,
-                    transpose: bool = False) -> dict[str, Any]:
+                    transpose: bool = False, balanced: bool = True) -> dict[str, Any]:
         """Krylov–Schur on ``Q (W - sigma I)^-1`` (or its transpose), ranked by the real part
         of the back-transformed eigenvalue ``sigma + 1/theta``.
 
@@ -385,7 +385,8 @@ class SlepcBackend(SlepcAnalysis, Backend):
         I)^-1 D`` with ``D = diag(sqrt(p))``: a similarity (same eigenvalues), symmetric for
         reversible chains, so the Schur vectors give accurate eigenvectors even where W
         itself is far from normal (a biased chain with walls). ``initial`` and the returned
-        vectors are in the original coordinates.
+        vectors are in the original coordinates. ``balanced = False`` keeps ``D = I`` (a
+        reducible chain, where ``p`` vanishes on some states) and the oblique projector.
         """
         from slepc4py import SLEPc
 
@@ -396,7 +397,14 @@ class SlepcBackend(SlepcAnalysis, Backend):
         start, stop = operator.handle["rows"]
         backend = self
 
-        if stationary is not None:
+        oblique = None
+        if stationary is not None and not balanced:
+            # Q = I - p 1^T (Q^T = I - 1 p^T), p summing to 1, in the original coordinates
+            scaling, null = np.ones(stop - start), None
+            law = stationary / self.world.sum(float(stationary.sum()))
+            ones = np.ones(stop - start)
+            oblique = (ones, law) if transpose else (law, ones)
+        elif stationary is not None:
             weights = self._scaling_from(stationary, floor=1e-100)
             # transposed problem: balanced by D^-1 (W^T is balanced by the inverse scaling)
             scaling = 1.0 / weights if transpose else weights
@@ -412,6 +420,8 @@ class SlepcBackend(SlepcAnalysis, Backend):
                                                 transpose=transpose) / scaling
                 if null is not None:  # the balanced projector is orthogonal: I - c c^T
                     result -= null * backend.world.sum(float(null @ result))
+                elif oblique is not None:  # I - a b^T
+                    result -= oblique[0] * backend.world.sum(float(oblique[1] @ result))
                 y.getArray()[:] = result
 
         m = stop - start
@@ -500,8 +510,11 @@ class SlepcBackend(SlepcAnalysis, Backend):
         certified = False
         eps_seconds = 0.0
         path = "general"
-        if stationary is not None and self.inner == "direct" and self._balanced_is_normal(
-                operator, stationary):
+        # balancing by sqrt(p) needs p > 0 everywhere: not with transient states or several
+        # closed classes (p vanishes there, up to rounding noise), where D = I is used
+        balance = operator.irreducible is not False
+        if (stationary is not None and balance and self.inner == "direct"
+                and self._balanced_is_normal(operator, stationary)):
             found = self._symmetric_part_search(operator, count, tolerance, stationary)
             rounds.append(found["record"])
             eps_seconds += found["record"]["seconds"]
@@ -520,7 +533,7 @@ class SlepcBackend(SlepcAnalysis, Backend):
             log(f"solve: Krylov–Schur on the shifted inverse about {solver['shift']:.2e}, "
                 f"{nev} modes by real part (subspace {ncv})")
             result = self._eigensolve(operator, nev, ncv, max(tolerance, KRYLOV_TOLERANCE_FLOOR),
-                                      initial, stationary)
+                                      initial, stationary, balanced=balance)
             eps_seconds += result["seconds"]
             values, local = result["values"], result["vectors"]
             if stationary is not None:
@@ -552,7 +565,8 @@ class SlepcBackend(SlepcAnalysis, Backend):
                                "needs a factorization; use solve.inner = 'direct' to certify"}
                 break
             above = values.real > test_shift
-            scaling = self._balancing(values, local)
+            scaling = (self._balancing(values, local) if balance
+                       else np.ones(local.shape[0]))
             cert = self._certify(W, scaling, values[above], local[:, above], test_shift)
             record.update(missing=cert.missing, certified=cert.certified,
                           certificate_seconds=cert.seconds)
@@ -568,13 +582,14 @@ class SlepcBackend(SlepcAnalysis, Backend):
         # similarity, so a first-order bound there bounds the same eigenvalue): for
         # reversible chains they are those of a symmetric matrix, where W's own basis would
         # multiply both the residual and the condition by the conditioning of D.
-        scaling = self._balancing(values, local)
+        scaling = (self._balancing(values, local) if balance
+                       else np.ones(local.shape[0]))
         balanced = local / scaling[:, None]
         balanced = balanced / global_norms(self.world, balanced)[None, :]
         balanced_residuals = self._residuals(W, values, balanced, scale, scaling)
         left_values, left, left_method = self._left_vectors(operator, values, balanced,
                                                             scaling, scale, tolerance,
-                                                            stationary)
+                                                            stationary, balance)
         products = (gram(self.world, balanced, balanced), gram(self.world, left, left),
                     gram(self.world, left, balanced))
         condition = conditions_from_products(values, left_values, *products,
@@ -808,7 +823,8 @@ class SlepcBackend(SlepcAnalysis, Backend):
 
     def _left_vectors(self, operator: Operator, values: np.ndarray, balanced: np.ndarray,
                       scaling: np.ndarray, scale: float, tolerance: float,
-                      stationary: np.ndarray | None) -> tuple[np.ndarray, np.ndarray, str]:
+                      stationary: np.ndarray | None,
+                      balance: bool = True) -> tuple[np.ndarray, np.ndarray, str]:
         """Left eigenvectors in balanced coordinates (``l^H Wb = mu l^H``, ``Wb = D^-1 W
         D``). First guess: the right ones (exact when ``Wb`` is normal), accepted when their
         left residual ``||Wb^T l - conj(mu) l||`` is small; otherwise a Krylov–Schur solve
@@ -823,7 +839,8 @@ class SlepcBackend(SlepcAnalysis, Backend):
         deflated = int(stationary is not None)
         result = self._eigensolve(operator, max(values.size - deflated, 1),
                                   min(operator.n_states - 1, max(2 * values.size + 8, 48)),
-                                  tolerance, None, stationary, transpose=True)
+                                  tolerance, None, stationary, transpose=True,
+                                  balanced=balance)
         left_values, left = result["values"], result["vectors"]
         if stationary is not None:  # the left null vector of a conserving W is 1
             left_values = np.concatenate([[0.0], left_values])

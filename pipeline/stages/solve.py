@@ -51,6 +51,8 @@ def run(ctx: RunContext) -> StageOutput:
             ctx.operator = backend.assemble(ctx.model)
     operator = ctx.operator
     classes = _closed_classes(ctx) if operator.check.conserving else None
+    if classes is not None:
+        operator.irreducible = classes.count == 1
     modes = _symmetrized_modes(ctx, classes) if settings.symmetrize != "never" else None
     if modes is None:
         modes = backend.slowest_modes(
