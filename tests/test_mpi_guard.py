@@ -31,3 +31,18 @@ def test_scipy_backend_refuses_to_run_duplicated_under_mpiexec(tmp_path):
     assert all("2 MPI ranks" in line for line in errors)
     assert "Traceback" not in result.stderr
     assert not (tmp_path / "s.zarr").exists()  # refused before touching the store
+
+
+@pytest.mark.parametrize("given, expected", [(None, "1"), ("2", "2")])
+def test_one_blas_thread_per_rank_under_a_launcher(given, expected):
+    """With a world size > 1 in the environment (what mpiexec exports), importing the
+    package sets one BLAS thread per rank unless the user chose a number."""
+    env = {key: value for key, value in os.environ.items()
+           if key not in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS")}
+    env["OMPI_COMM_WORLD_SIZE"] = "2"
+    if given is not None:
+        env["OPENBLAS_NUM_THREADS"] = given
+    code = "import os, pipeline; print(os.environ['OPENBLAS_NUM_THREADS'])"
+    result = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
+                            env=env, cwd=Path(__file__).resolve().parents[1], timeout=60)
+    assert result.stdout.strip() == expected, result.stderr
