@@ -55,3 +55,14 @@ def inverse_iteration(
             if steps + needed > STATIONARY_MAX_STEPS:
                 break  # cannot get there within the budget: report what it is
     return p, steps, float(estimate)
+
+
+def normalized_null_vector(A: np.ndarray) -> np.ndarray:
+    """``p`` with ``A p = 0`` and ``sum p = 1`` for a dense generator ``A`` (``[n, n]``): the
+    last balance equation replaced by the normalization (common practice). Raises
+    ``numpy.linalg.LinAlgError`` when the null space is not one-dimensional."""
+    system = np.array(A, dtype=np.float64, copy=True)
+    system[-1, :] = 1.0
+    rhs = np.zeros(system.shape[0])
+    rhs[-1] = 1.0
+    return np.linalg.solve(system, rhs)

@@ -41,7 +41,11 @@ from pipeline.backends.base import (
 )
 from pipeline.backends.completeness import SpectrumEnclosure, farthest_enclosed_distance
 from pipeline.backends.conditioning import eigenvalue_conditions
-from pipeline.backends.inverse_iteration import STATIONARY_TARGET, inverse_iteration
+from pipeline.backends.inverse_iteration import (
+    STATIONARY_TARGET,
+    inverse_iteration,
+    normalized_null_vector,
+)
 from pipeline.backends.scipy_analysis import ScipyAnalysis
 from pipeline.errors import BackendError, ModelError, SolverError
 from pipeline.models.base import Model, validate_block
@@ -399,12 +403,8 @@ class ScipyBackend(ScipyAnalysis, Backend):
         n = operator.n_states
         if n <= dense_limit and "lu" not in operator.handle:
             # Replace the last balance equation by the normalization sum(p) = 1 (common practice).
-            A = W.toarray()
-            A[-1, :] = 1.0
-            rhs = np.zeros(n)
-            rhs[-1] = 1.0
             try:
-                p = np.linalg.solve(A, rhs)
+                p = normalized_null_vector(W.toarray())
             except np.linalg.LinAlgError:
                 raise SolverError("solve.stationary: the stationary distribution is not "
                                   "unique (W has several closed classes)") from None

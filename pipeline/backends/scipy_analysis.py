@@ -25,6 +25,7 @@ from pipeline.backends.base import (
     Stationary,
     flows_from_entries,
 )
+from pipeline.backends.inverse_iteration import normalized_null_vector
 from pipeline.errors import SolverError
 from pipeline.models.base import RowBlock
 
@@ -77,11 +78,7 @@ class ScipyAnalysis:
         sub = W[states][:, states].tocsr()
         m = states.size
         if m <= max(dense_limit, 1):
-            A = sub.toarray()
-            A[-1, :] = 1.0
-            rhs = np.zeros(m)
-            rhs[-1] = 1.0
-            p = np.linalg.solve(A, rhs)
+            p = normalized_null_vector(sub.toarray())
             method = "dense solve on the class with the normalization row"
         else:
             shift = SHIFT_FACTOR * max(operator.check.max_exit_rate, np.finfo(float).tiny)

@@ -22,6 +22,7 @@ from typing import Any
 import numpy as np
 
 from pipeline.backends.base import Classes, Operator, Stationary
+from pipeline.backends.inverse_iteration import normalized_null_vector
 from pipeline.backends.petsc_tools import apply, petsc
 from pipeline.errors import SolverError
 
@@ -111,11 +112,8 @@ class SlepcClasses:
         pieces = self.world.allgather(sub.getValuesCSR())
         A = sparse.vstack([sparse.csr_matrix((d, j, i), shape=(i.size - 1, size))
                            for i, j, d in pieces], format="csr").toarray()
-        A[-1, :] = 1.0
-        rhs = np.zeros(size)
-        rhs[-1] = 1.0
         try:
-            p = np.linalg.solve(A, rhs)
+            p = normalized_null_vector(A)
         except np.linalg.LinAlgError:
             raise SolverError("solve.closed_classes: a closed class has no unique stationary "
                               "law (its states do not all communicate)") from None
