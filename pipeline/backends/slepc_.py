@@ -772,7 +772,8 @@ class SlepcBackend(SlepcAnalysis, Backend):
                 test_shift = candidate
             keep = values.real > test_shift
             cert = certify_by_inertia(self.world, W, scaling, values[keep], vectors[:, keep],
-                                      test_shift, factor=factor)
+                                      test_shift, factor=factor,
+                                      span=(Q, coefficients[:, keep]))
             log(f"solve: symmetric-part search, certificate at t = {test_shift:.3e}: "
                 f"{cert.above_shift} above t, {cert.captured} in the found span -> "
                 + ("certified" if cert.certified else f"{cert.missing} missing"))
