@@ -81,9 +81,10 @@ def block_lanczos_largest(
     max_columns = max(min(max_columns, room), 1)
     local = start.shape[0]
     width = start.shape[1]
-    # the basis, preallocated (pages are touched only as columns are filled), column-major
-    # so the filled part is one contiguous operand of every projection
-    basis = _Basis(local, max_columns + width)
+    # the basis, column-major so the filled part is one contiguous operand of every
+    # projection; it grows by doubling (never reserving max_columns up front, which strict
+    # overcommit settings on cluster nodes would refuse)
+    basis = _Basis(local, min(max_columns + width, 16 * width + m))
     first = _orthonormal(world, _project(world, start, deflation, basis), None)
     basis.append(first)
     widths = [first.shape[1]]
@@ -135,15 +136,21 @@ def block_lanczos_largest(
 
 
 class _Basis:
-    """Orthonormal columns ``[row, size]`` in a preallocated column-major array."""
+    """Orthonormal columns ``[row, size]`` in a column-major array that doubles when full."""
 
     def __init__(self, rows: int, capacity: int) -> None:
-        self.array = np.empty((rows, capacity), order="F")
+        self.array = np.empty((rows, max(capacity, 1)), order="F")
         self.size = 0
 
     def append(self, block: np.ndarray) -> None:
-        self.array[:, self.size:self.size + block.shape[1]] = block
-        self.size += block.shape[1]
+        needed = self.size + block.shape[1]
+        if needed > self.array.shape[1]:
+            grown = np.empty((self.array.shape[0], max(needed, 2 * self.array.shape[1])),
+                             order="F")
+            grown[:, :self.size] = self.array[:, :self.size]
+            self.array = grown
+        self.array[:, self.size:needed] = block
+        self.size = needed
 
     def filled(self) -> np.ndarray:
         return self.array[:, :self.size]
