@@ -4,9 +4,10 @@ code on one rank and under ``mpiexec -n P``.
 Every state vector is *local rows* ``[start, stop)`` (``local_rows``); nothing gathers ``W``
 or a whole vector except the mode expansion up to ``solve.dense_limit`` states.
 
-- currents: the flux ``F = W diag(p)`` (a copy of ``W`` scaled by columns) and its parallel
-  transpose, whose local rows hold the reverse flux ``F_ji`` of every local entry ``(i, j)``
-  (aligned by the key ``i n + j``); sums and maxima reduced over the ranks.
+- currents: the flux ``F = W diag(p)`` (a copy of ``W`` scaled by columns, read and freed)
+  and the parallel transpose ``W^T`` scaled by rows with the rank's own ``p``, whose local
+  rows hold the reverse flux ``F_ji`` of every local entry ``(i, j)`` (aligned by the key
+  ``i n + j``); sums and maxima reduced over the ranks. At most one matrix besides ``W``.
 - transposed solves: MUMPS LU of ``W``, ``KSPSolveTranspose``.
 - ``exp(tW) p0``: SLEPc's MFN, Expokit (Sidje 1998, ACM Trans. Math. Softw. 24, 130: Krylov
   projection with time stepping) by default; ``[solve.petsc] mfn_type = "krylov"`` selects
@@ -57,15 +58,21 @@ class SlepcAnalysis(SlepcClasses):
         if p.shape != (stop - start,):
             raise ValueError(f"currents: expected the {stop - start} local rows of p, got "
                              f"shape {p.shape}")
+        PETSc = petsc()
         weights = W.createVecRight()
         weights.getArray()[:] = p
+        # At most one matrix beside W at a time: F = W diag(p), read and freed, then W^T.
         flux_matrix = W.copy()
         flux_matrix.diagonalScale(R=weights)  # F_ij = W_ij p_j, the pattern of W
         indptr, indices, flux = flux_matrix.getValuesCSR()
         flux = np.array(flux, dtype=np.float64)
-        flux_matrix.transpose()  # in place: local row i now holds F_ji
-        backward = _sorted_entries(flux_matrix, start, n)
         flux_matrix.destroy()
+        transposed = W.transpose(PETSc.Mat())  # local row i holds W_ji
+        own = transposed.createVecLeft()
+        own.getArray()[:] = p
+        transposed.diagonalScale(L=own)  # F_ji = W_ji p_i with this rank's own p_i
+        backward = _sorted_entries(transposed, start, n)
+        transposed.destroy()
         model = operator.model
 
         def local() -> tuple[np.ndarray, np.ndarray, np.ndarray]:
