@@ -210,7 +210,6 @@ class Backend(ABC):
     def assemble(self, model: Model) -> Operator:
         """Build and check the generator from the model's row blocks."""
 
-    @abstractmethod
     def slowest_modes(
         self,
         operator: Operator,
@@ -222,7 +221,32 @@ class Backend(ABC):
         dense_limit: int = 1024,
         max_search: int = 400,
     ) -> Modes:
-        """The ``count`` eigenvalues of largest real part, with certificates."""
+        """The ``count`` eigenvalues of largest real part, with certificates, by the method
+        :func:`resolve_method` picks (the same choice on every backend)."""
+        n = operator.n_states
+        count = min(count, n)
+        method = resolve_method(method, n, count, dense_limit)
+        if method == "dense":
+            return self._dense_modes(operator, count, vectors)
+        if method == "krylov":
+            return self._unfactored_modes(operator, count, tolerance, vectors)
+        return self._shift_invert_modes(operator, count, tolerance, vectors, max_search)
+
+    @abstractmethod
+    def _dense_modes(self, operator: Operator, count: int, want_vectors: bool) -> Modes:
+        """Method ``dense``: every eigenvalue (certified complete)."""
+
+    @abstractmethod
+    def _unfactored_modes(self, operator: Operator, count: int, tolerance: float,
+                          want_vectors: bool) -> Modes:
+        """Method ``krylov``: a Krylov method on ``W`` itself, no factorization (never
+        certified complete)."""
+
+    @abstractmethod
+    def _shift_invert_modes(self, operator: Operator, count: int, tolerance: float,
+                            want_vectors: bool, max_search: int) -> Modes:
+        """Method ``shift-invert``: the factorized search with its completeness
+        certificate."""
 
     @abstractmethod
     def stationary(self, operator: Operator, dense_limit: int = 1024) -> Stationary:

@@ -37,7 +37,6 @@ from pipeline.backends.base import (
     Operator,
     Stationary,
     check_column_sums,
-    resolve_method,
 )
 from pipeline.backends.completeness import SpectrumEnclosure, farthest_enclosed_distance
 from pipeline.backends.conditioning import eigenvalue_conditions
@@ -150,27 +149,11 @@ class ScipyBackend(ScipyAnalysis, Backend):
 
     # -- slowest modes -----------------------------------------------------------------
 
-    def slowest_modes(
-        self,
-        operator: Operator,
-        count: int,
-        *,
-        method: str = "auto",
-        tolerance: float = 1e-12,
-        vectors: bool = False,
-        dense_limit: int = 1024,
-        max_search: int = 400,
-    ) -> Modes:
-        n = operator.n_states
-        count = min(count, n)
-        method = resolve_method(method, n, count, dense_limit)
-        if method == "dense":
-            return self._dense_modes(operator, count, vectors)
-        if method == "krylov":
-            from pipeline.backends.krylov import krylov_modes
+    def _unfactored_modes(self, operator: Operator, count: int, tolerance: float,
+                          want_vectors: bool) -> Modes:
+        from pipeline.backends.krylov import krylov_modes
 
-            return krylov_modes(operator, count, tolerance, vectors)
-        return self._shift_invert_modes(operator, count, tolerance, vectors, max_search)
+        return krylov_modes(operator, count, tolerance, want_vectors)
 
     def _dense_modes(self, operator: Operator, count: int, want_vectors: bool) -> Modes:
         n = operator.n_states

@@ -23,7 +23,6 @@ from pipeline.backends.base import (
     Operator,
     Stationary,
     check_column_sums,
-    resolve_method,
 )
 from pipeline.backends.conditioning import conditions_from_products
 from pipeline.backends.inverse_iteration import STATIONARY_TARGET, inverse_iteration
@@ -190,27 +189,7 @@ class SlepcBackend(SlepcAnalysis, Backend):
 
     # -- slowest modes -------------------------------------------------------------------
 
-    def slowest_modes(
-        self,
-        operator: Operator,
-        count: int,
-        *,
-        method: str = "auto",
-        tolerance: float = 1e-12,
-        vectors: bool = False,
-        dense_limit: int = 1024,
-        max_search: int = 400,
-    ) -> Modes:
-        n = operator.n_states
-        count = min(count, n)
-        method = resolve_method(method, n, count, dense_limit)
-        if method == "dense":
-            return self._dense_modes(operator, count, vectors)
-        if method == "krylov":
-            return self._plain_krylov_modes(operator, count, tolerance, vectors)
-        return self._krylov_modes(operator, count, tolerance, vectors, max_search)
-
-    def _plain_krylov_modes(self, operator: Operator, count: int, tolerance: float,
+    def _unfactored_modes(self, operator: Operator, count: int, tolerance: float,
                             want_vectors: bool) -> Modes:
         """Method ``krylov``: Krylov–Schur on ``W`` itself, no factorization, largest real
         parts (symmetric Lanczos when ``W = W^T``); never certified complete (a Krylov
@@ -489,8 +468,8 @@ class SlepcBackend(SlepcAnalysis, Backend):
         shell.destroy()
         return outcome
 
-    def _krylov_modes(self, operator: Operator, count: int, tolerance: float,
-                      want_vectors: bool, max_search: int) -> Modes:
+    def _shift_invert_modes(self, operator: Operator, count: int, tolerance: float,
+                            want_vectors: bool, max_search: int) -> Modes:
         started = time.perf_counter()
         W = operator.handle["W"]
         rows = operator.handle["rows"]
