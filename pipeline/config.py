@@ -795,13 +795,8 @@ def _parse_lattice(table: dict[str, Any]) -> LatticeConfig:
         raise ConfigError("model.size: empty list; fix: give at least one axis, e.g. [100]")
     if len(sizes_list) > MAX_DIMENSIONS:
         raise ConfigError(f"model.size: at most {MAX_DIMENSIONS} axes, got {len(sizes_list)}")
-    sizes = []
-    for axis, value in enumerate(sizes_list):
-        label = f"model.size[{axis}]" if isinstance(sizes_raw, list) else "model.size"
-        number = _integer(value, label)
-        if number < 2:
-            raise ConfigError(f"{label}: sites per axis must be >= 2, got {number}")
-        sizes.append(number)
+    sizes = _integer_entries(sizes_raw, sizes_list, "model.size", 2,
+                             "sites per axis must be >= 2")
     dims = len(sizes)
     boundary = _per_axis(table.get("boundary", "periodic"), dims, "model.boundary", _string)
     for axis, value in enumerate(boundary):
@@ -989,6 +984,20 @@ def _integer(value: Any, label: str) -> int:
             return int(value)
         raise ConfigError(f"{label}: expected a whole number, got {value!r}")
     return value
+
+
+def _integer_entries(raw: Any, entries: list[Any], field: str, minimum: int,
+                     requirement: str) -> list[int]:
+    """Whole numbers >= ``minimum`` from ``entries`` (``raw`` as written: a list names its
+    entries ``field[i]`` in errors, a single value ``field``)."""
+    numbers = []
+    for index, value in enumerate(entries):  # a loop over axes or species
+        label = f"{field}[{index}]" if isinstance(raw, list) else field
+        number = _integer(value, label)
+        if number < minimum:
+            raise ConfigError(f"{label}: {requirement}, got {number}")
+        numbers.append(number)
+    return numbers
 
 
 def _number(value: Any, label: str) -> float:

@@ -24,6 +24,7 @@ from pipeline.config import (
     _boolean,
     _choice,
     _integer,
+    _integer_entries,
     _number,
     _rate,
     _reject_unknown,
@@ -107,13 +108,7 @@ def parse_reactions(table: dict[str, Any], base: Path) -> ReactionsConfig:
     if len(bound_list) != len(species):
         raise ConfigError(f"model.bounds: expected {len(species)} entries (one per species), "
                           f"got {len(bound_list)}")
-    bounds = []
-    for index, value in enumerate(bound_list):
-        label = f"model.bounds[{index}]" if isinstance(raw_bounds, list) else "model.bounds"
-        number = _integer(value, label)
-        if number < 1:
-            raise ConfigError(f"{label}: must be >= 1, got {number}")
-        bounds.append(number)
+    bounds = _integer_entries(raw_bounds, bound_list, "model.bounds", 1, "must be >= 1")
     if math.prod(b + 1 for b in bounds) > MAX_STATES:
         raise ConfigError("model.bounds: the projection has too many states; fix: smaller "
                           "bounds")
@@ -189,12 +184,16 @@ def _path(value: Any, base: Path, label: str) -> str:
     return str(path.resolve())
 
 
+def _model_file(table: dict[str, Any], base: Path, what: str, example: str) -> str:
+    """The required ``model.file``, resolved against the config's folder."""
+    if "file" not in table:
+        raise ConfigError(f"model.file: missing; fix: give {what}, e.g. file = \"{example}\"")
+    return _path(table["file"], base, "model.file")
+
+
 def parse_network(table: dict[str, Any], base: Path) -> NetworkConfig:
     section = "model:network"
-    if "file" not in table:
-        raise ConfigError("model.file: missing; fix: give the graph file, e.g. file = "
-                          "\"edges.csv\"")
-    file = _path(table["file"], base, "model.file")
+    file = _model_file(table, base, "the graph file", "edges.csv")
     fmt = _choice(table.get("format", _default(section, "format")),
                   ("auto", "edgelist", "mtx", "graphml"), "model.format")
     if fmt == "auto":
@@ -234,10 +233,7 @@ def parse_network(table: dict[str, Any], base: Path) -> NetworkConfig:
 
 def parse_matrix(table: dict[str, Any], base: Path) -> MatrixConfig:
     section = "model:matrix"
-    if "file" not in table:
-        raise ConfigError("model.file: missing; fix: give the generator file, e.g. file = "
-                          "\"generator.mtx\"")
-    file = _path(table["file"], base, "model.file")
+    file = _model_file(table, base, "the generator file", "generator.mtx")
     if Path(file).suffix.lower() not in (".mtx", ".npz"):
         raise ConfigError(f"model.file: {Path(file).name!r} is neither Matrix Market (.mtx) nor "
                           "scipy .npz; fix: save it with scipy.io.mmwrite or "
