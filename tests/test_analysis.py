@@ -18,8 +18,8 @@ from scipy.special import ive
 
 from pipeline.backends import BACKENDS, select_backend
 from pipeline.errors import BackendError
-from pipeline.models.base import Model, RowBlock
 from pipeline.models.lattice import Disorder, LatticeWalk
+from pipeline.models.matrix import UserMatrix
 
 from .conftest import dense_generator, reference_generator
 
@@ -48,32 +48,9 @@ def chain(size, boundary, u, v):
     return LatticeWalk((size,), (boundary,), (u,), (v,))
 
 
-class DenseModel(Model):
-    """A generator given as a dense matrix (tests only): rows of W as CSR pieces."""
-
-    name = "dense-test"
-
-    def __init__(self, W: np.ndarray, conserving: bool = True) -> None:
-        self.W = sp.csr_matrix(W)
-        self._conserving = conserving
-
-    @property
-    def n_states(self) -> int:
-        return self.W.shape[0]
-
-    @property
-    def conserving(self) -> bool:
-        return self._conserving
-
-    def row_block(self, start: int, stop: int) -> RowBlock:
-        piece = self.W[start:stop]
-        return RowBlock(start, stop, piece.indptr.astype(np.int64), piece.indices, piece.data)
-
-    def nnz_upper_bound(self, start: int, stop: int) -> int:
-        return int(self.W[start:stop].nnz)
-
-    def state_labels(self, start: int, stop: int) -> dict[str, np.ndarray]:
-        return {}
+def dense_model(W: np.ndarray, conserving: bool = True) -> UserMatrix:
+    """The matrix model on a dense test generator (``W[i, j]`` = rate j -> i)."""
+    return UserMatrix(sp.csr_matrix(W), "test generator", conserving=conserving)
 
 
 # ---------------------------------------------------------------------------------------
@@ -192,7 +169,7 @@ def two_closed_classes() -> np.ndarray:
 def test_communicating_classes_match_networkx(backend):
     # Strongly connected components and closed (attracting) ones from networkx.
     W = two_closed_classes()
-    classes = backend.communicating_classes(backend.assemble(DenseModel(W)))
+    classes = backend.communicating_classes(backend.assemble(dense_model(W)))
     graph = nx.DiGraph([(j, i) for i, j in zip(*np.nonzero(W), strict=True) if i != j])
     expected = {frozenset(c) for c in nx.strongly_connected_components(graph)}
     found = {frozenset(np.flatnonzero(classes.labels == k).tolist())
@@ -208,7 +185,7 @@ def test_class_stationary_laws_match_dense_null_space(backend):
     # Each closed class has one stationary law: the element of the null space of W (numpy
     # SVD) that vanishes outside the class (common practice: null space of the generator).
     W = two_closed_classes()
-    operator = backend.assemble(DenseModel(W))
+    operator = backend.assemble(dense_model(W))
     classes = backend.communicating_classes(operator)
     _, singular, vh = np.linalg.svd(W)
     null = vh[singular < 1e-12 * singular.max()].T
@@ -278,7 +255,7 @@ def test_solve_transposed_refuses_a_closed_class(backend):
     from pipeline.errors import SolverError
 
     with pytest.raises(SolverError, match="singular"):
-        backend.solve_transposed(backend.assemble(DenseModel(W)), -np.ones(7))
+        backend.solve_transposed(backend.assemble(dense_model(W)), -np.ones(7))
 
 
 # ---------------------------------------------------------------------------------------

@@ -16,7 +16,7 @@ from pipeline.stages.runner import run_pipeline
 from pipeline.store import Store
 
 from .conftest import assert_one_line_user_error, ring_config, run_cli, write_config
-from .test_analysis import DenseModel, two_closed_classes
+from .test_analysis import dense_model, two_closed_classes
 
 CHAIN = """\
 [run]
@@ -120,7 +120,7 @@ def _solve_context(tmp_path, closed_classes):
     raw = {"run": {"name": "classes"}, "model": {"type": "lattice", "size": [7]},
            "solve": {"closed_classes": closed_classes, "modes": 3}}
     config = parse_config(raw)
-    model = DenseModel(two_closed_classes())
+    model = dense_model(two_closed_classes())
     return RunContext(config=config, store=Store(tmp_path / "s.zarr", create=True),
                       run="classes", model=model, backend_name="scipy")
 
