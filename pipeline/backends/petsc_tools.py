@@ -15,6 +15,7 @@ from pipeline.parallel import World
 
 __all__ = [
     "apply",
+    "combine",
     "apply_transpose",
     "global_norms",
     "gram",
@@ -72,6 +73,13 @@ def _apply(matrix: Any, local: np.ndarray, transpose: bool,
     return out.reshape(target.getLocalSize(), *local.shape[1:])
 
 
+def combine(columns: np.ndarray, coefficients: np.ndarray) -> np.ndarray:
+    """``columns @ coefficients`` (local rows ``[row, k]`` times a small ``[k, m]``) as a
+    column-major array, the layout PETSc vectors and direct solves take without a copy:
+    computed as ``(coefficients^T columns^T)^T``, one gemm either way."""
+    return (coefficients.T @ columns.T).T
+
+
 def gram(world: World, left: np.ndarray, right: np.ndarray) -> np.ndarray:
     """``left^H right`` summed over ranks (``[k, m]``). (A real ``left`` is not conjugated:
     ``conj`` of a real array is a full copy, which costs more than the product.)"""
@@ -109,7 +117,7 @@ def orthonormalize(world: World, columns: np.ndarray) -> np.ndarray:
         products = gram(world, basis, basis)
         products = 0.5 * (products + products.T)
         factor = np.linalg.cholesky(products)  # products = factor factor^T
-        basis = basis @ np.linalg.inv(factor).T  # basis factor^-T (a small inverse: one gemm)
+        basis = combine(basis, np.linalg.inv(factor).T)  # basis factor^-T (one gemm)
     return basis
 
 

@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import resource
 import time
+from collections.abc import Callable
 from typing import Any
 
 import numpy as np
@@ -61,6 +62,9 @@ SYMMETRIC_TOLERANCE_FLOOR = 1e-10  # 1e-8 saved 14% of the solves but left W res
 # columns, measured on the driven torus) and the largest basis per search round
 LANCZOS_BLOCK = 4
 LANCZOS_MAX_COLUMNS = 400
+# Ritz pairs of the symmetric part beyond the wanted ones, at a loose tolerance: they only
+# place the certificate's test shift below the last wanted group
+LOOSE_MODES = 2
 INNER_SOLVERS = ("direct", "iterative")
 PRECONDITIONERS = {"auto": "bjacobi", "bjacobi": "bjacobi", "gamg": "gamg", "hypre": "hypre",
                    "asm": "asm"}
@@ -665,7 +669,7 @@ class SlepcBackend(SlepcAnalysis, Backend):
         a multiple eigenvalue beyond the block width are counted by the certificate
         (``missing``) and searched for again with everything found so far deflated. The
         certificate decides; nothing is assumed."""
-        from pipeline.backends.block_lanczos import block_lanczos_largest, start_block
+        from pipeline.backends.block_lanczos import shift_invert_lanczos, start_block
         from pipeline.backends.inertia_certificate import (
             certify_by_inertia,
             orthonormal_basis,
@@ -687,18 +691,20 @@ class SlepcBackend(SlepcAnalysis, Backend):
         factor = ShiftedSymmetricFactor(self.world, S)
         floor = max(tolerance, SYMMETRIC_TOLERANCE_FLOOR)
 
-        def s_residuals(theta: np.ndarray, vectors: np.ndarray) -> np.ndarray:
-            mu = above - 1.0 / theta
-            difference = apply(S, vectors) - vectors * mu[None, :]
-            return global_norms(self.world, difference) / norm_s
+        work = S.createVecs()
 
-        def estimate_scale(theta: np.ndarray) -> np.ndarray:
-            # S x - mu x = (sigma I - S) r / theta for Op x - theta x = r
-            return (above + norm_s) / (norm_s * np.maximum(np.abs(theta), 1e-300))
+        def apply_s(columns: np.ndarray) -> np.ndarray:
+            return apply(S, columns, work)
 
         found = np.zeros((stop - start, 0))
         s_values = np.zeros(0)
-        nev = max(1, min(n - 2, count - 1 + EXTRA_MODES + 2))
+        # the wanted modes besides the null vector need the tight tolerance; LOOSE_MODES
+        # more only place the test shift (their eigenvalues converge as the square of the
+        # residual, so a loose residual is enough), unless they are copies of the last
+        # wanted eigenvalue
+        tight = max(1, min(n - 2, count - 1))
+        nev = max(1, min(n - 2, tight + LOOSE_MODES))
+        loose = min(1e3 * floor, 1e-6)
         record = {"search": "symmetric part", "method": "block Lanczos, shift-and-invert "
                   "(MUMPS LDL^T)", "block_size": LANCZOS_BLOCK, "rounds": 0, "converged": 0,
                   "iterations": 0, "solved_columns": 0}
@@ -708,19 +714,15 @@ class SlepcBackend(SlepcAnalysis, Backend):
             deflation = orthonormal_basis(self.world, np.column_stack([null, found]))
             room = n - deflation.shape[1]
             nev = max(1, min(nev, room))
-            # the last two only place the test shift: their eigenvalues converge as the
-            # square of the residual, so a looser residual is enough
-            tolerances = np.full(nev, floor)
-            tolerances[max(nev - 2, 1):] = min(1e3 * floor, 1e-6)
             width = max(1, min(LANCZOS_BLOCK, room))
-            search = block_lanczos_largest(
-                self.world, factor.solve, start_block(start, stop, width), deflation,
-                tolerances, s_residuals, estimate_scale,
-                max_columns=max(LANCZOS_MAX_COLUMNS, 4 * nev), dimension=n)
+            search = shift_invert_lanczos(
+                self.world, factor.solve, apply_s, start_block(start, stop, width),
+                deflation, (nev, _tight_then_loose(min(tight, nev), floor, loose, norm_s)),
+                norm_s, max_columns=max(LANCZOS_MAX_COLUMNS, 4 * nev), dimension=n)
             # (fewer Ritz pairs than asked when the whole complement was spanned)
-            keep_new = search.residuals <= tolerances[:search.theta.size]
+            keep_new = search.residuals <= search.tolerances
             new = search.vectors[:, keep_new]
-            s_values = np.concatenate([s_values, above - 1.0 / search.theta[keep_new]])
+            s_values = np.concatenate([s_values, search.values[keep_new]])
             found = np.column_stack([found, new])
             record["rounds"] += 1
             record["converged"] += int(keep_new.sum())
@@ -758,10 +760,13 @@ class SlepcBackend(SlepcAnalysis, Backend):
                 + ("certified" if cert.certified else f"{cert.missing} missing"))
             if cert.certified or cert.missing <= 0:
                 break
-            nev = cert.missing + 2
+            tight = cert.missing
+            nev = tight + LOOSE_MODES
         record.update(factorizations=factor.factorizations,
                       factor_seconds=factor.seconds)
         factor.destroy()
+        for vec in work:
+            vec.destroy()
         S.destroy()
         record["seconds"] = time.perf_counter() - started
         if cert is None:
@@ -934,3 +939,22 @@ class SlepcBackend(SlepcAnalysis, Backend):
         return {"backend": self.name, "ranks": self.world.size,
                 "peak_memory_mib_per_rank": [round(v, 1) for v in self.world.allgather(peak)],
                 "petsc_options": {str(k): str(v) for k, v in self.options.items()}}
+
+
+def _tight_then_loose(tight: int, floor: float, loose: float,
+                      norm_s: float) -> Callable[[np.ndarray], np.ndarray]:
+    """Tolerances of the symmetric-part search from its Ritz values ``mu`` of ``S``
+    (descending): ``floor`` for the first ``tight`` and for every later one equal to the
+    last of them within the grouping tolerance (a multiple eigenvalue cut by the wanted
+    count is wanted whole), ``loose`` for the rest."""
+
+    def rule(mu: np.ndarray) -> np.ndarray:
+        tolerances = np.full(mu.size, loose)
+        tolerances[:tight] = floor
+        if mu.size > tight > 0:
+            spread = float(mu[0] - mu[-1])
+            same = mu[tight:] >= mu[tight - 1] - max(1e-8 * spread, 1e-12 * norm_s)
+            tolerances[tight:][same] = floor
+        return tolerances
+
+    return rule

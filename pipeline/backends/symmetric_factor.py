@@ -100,10 +100,9 @@ def solve_block(ksp: Any, matrix: Any, columns: np.ndarray) -> np.ndarray:
     comm = matrix.getComm()
     rhs = PETSc.Mat().createDense(((local, n), (None, k)), comm=comm,
                                   array=np.asfortranarray(columns, dtype=np.float64))
-    out = PETSc.Mat().createDense(((local, n), (None, k)), comm=comm)
-    out.setUp()
+    result = np.empty((local, k), order="F")  # the solution is written here, not copied
+    out = PETSc.Mat().createDense(((local, n), (None, k)), comm=comm, array=result)
     ksp.getPC().getFactorMatrix().matSolve(rhs, out)
-    result = np.array(out.getDenseArray(), copy=True)
     rhs.destroy()
     out.destroy()
     return result
