@@ -18,8 +18,11 @@ instead of 19 steps of 4 to the 13 slowest at residual 1e-10, benchmarks/README.
 residual of a Ritz pair is known without forming it: ``S`` maps the Krylov space ``K`` into
 ``K + span(S V_0)`` (``S = sigma I - T^-1`` and ``T^-1`` maps every block but the first back
 into ``K``), so ``S V y - V (V^T S V) y = Z (Z^T S V) y`` with ``Z`` an orthonormal basis of
-the part of ``S V_0`` outside ``K``: a ``b x m`` product per step. Convergence is then
-confirmed on residuals computed from the Ritz vectors themselves (``S x - mu x``).
+the part of ``S V_0`` outside ``K``. With ``u = S V_0``, ``a = V^T u`` and ``c = V^T S u``
+(one block row each per step), ``Z^T S V y = (c - mu a)^T y`` up to the ``b x b`` metric
+``u^T u - a^T a``: the estimate costs two ``b``-column products per step and no pass over
+the basis. Convergence is then confirmed on residuals computed from the Ritz vectors
+themselves (``S x - mu x``).
 """
 
 from __future__ import annotations
@@ -104,12 +107,16 @@ def shift_invert_lanczos(
     if first is None:
         raise ValueError("the start block has no direction outside the deflation space")
     basis.append(first)
-    # projected matrix H = V^T S V (grown by one block row and column per step) and the
-    # outside part Z of S V_0 (its columns stay orthogonal to the basis)
-    s_first = apply_matrix(first)
-    projected = gram(world, first, s_first)
-    outside = _orthonormal(world, _project(world, s_first, deflation, basis), rank_cut=True)
-    del s_first
+    # projected matrix H = V^T S V (grown by one block row and column per step); the
+    # residual estimate's u = S V_0 (outside the deflation space), S u, and their
+    # projections a = V^T u, c = V^T S u
+    u = apply_matrix(first)
+    projected = gram(world, first, u)
+    s_u = apply_matrix(u)
+    metric_u = gram(world, u, u) - (gram(world, deflation, u).T @ gram(world, deflation, u)
+                                    if deflation.shape[1] else 0.0)
+    along = [gram(world, first, u)]
+    along_s = [gram(world, first, s_u)]
     columns = steps = 0
     newest = first
     while True:
@@ -127,27 +134,22 @@ def shift_invert_lanczos(
         del product
         if new is not None:
             s_new = apply_matrix(new)
-            # H's new block column and (below) Z's coupling, from one pass over the basis
+            # H's new block column, from one pass over the basis
             coupling = gram(world, basis.filled(), s_new)
             corner = gram(world, new, s_new)
             del s_new
             projected = np.block([[projected, coupling], [coupling.T, corner]])
             basis.append(new)
-            if outside is not None:  # keep Z outside the grown basis
-                outside = _orthonormal(world, _project(world, outside, np.zeros((local, 0)),
-                                                       _Tail(new)), rank_cut=True)
+            along.append(gram(world, new, u))
+            along_s.append(gram(world, new, s_u))
         symmetric = 0.5 * (projected + projected.T)
         values, rotations = np.linalg.eigh(symmetric)
         order = np.argsort(values)[::-1][:m]
         mu, Y = values[order], rotations[:, order]
         wanted = tolerance_of(mu)
         full = new is None
-        if outside is not None:
-            # S V y - V H y = Z (Z^T S V) y: the residual estimate, a b x m product
-            estimate = np.linalg.norm(gram(world, apply_matrix(outside), basis.filled()) @ Y,
-                                      axis=0) / scale
-        else:  # S V_0 lies inside the basis: the space is invariant under S
-            estimate = np.zeros(mu.size)
+        estimate = _residual_estimate(metric_u, np.vstack(along), np.vstack(along_s), mu,
+                                      Y) / scale
         ready = mu.size == m and bool(np.all(estimate <= wanted))
         if ready or full:
             ritz = combine(basis.filled(), Y)
@@ -186,16 +188,6 @@ class _Basis:
         return self.array[:, self.size - width:self.size]
 
 
-class _Tail:
-    """One block seen as a basis (to project against it alone)."""
-
-    def __init__(self, block: np.ndarray) -> None:
-        self.block = block
-
-    def filled(self) -> np.ndarray:
-        return self.block
-
-
 def _project(world: World, block: np.ndarray, deflation: np.ndarray, basis) -> np.ndarray:
     """``block`` orthogonalized against the deflation space and the basis by classical
     Gram–Schmidt, a second pass where the first cancelled most of a column (classical
@@ -217,6 +209,23 @@ def _project(world: World, block: np.ndarray, deflation: np.ndarray, basis) -> n
             break
         before = after
     return block
+
+
+def _residual_estimate(metric_u: np.ndarray, along: np.ndarray, along_s: np.ndarray,
+                       mu: np.ndarray, Y: np.ndarray) -> np.ndarray:
+    """``||S V y - mu V y||`` of the Ritz pairs ``(mu, y)`` from the Krylov relation: the
+    residual lies in the span of ``u_perp = P u`` (``P`` the projector off the basis and the
+    deflation space, ``u = S V_0``); with ``a = V^T u``, ``c = V^T S u`` and the metric
+    ``M = u_perp^T u_perp = u^T u - a^T a`` (deflation included), ``u_perp^T r = (c - mu
+    a)^T y`` and ``||r||^2 = (c - mu a)^T y`` weighted by ``M^+``. Exact in exact arithmetic
+    for a Krylov basis; only a trigger for the explicit check."""
+    metric = metric_u - along.T @ along
+    values, vectors = np.linalg.eigh(0.5 * (metric + metric.T))
+    keep = values > 1e-14 * max(float(np.abs(values).max(initial=0.0)), np.finfo(float).tiny)
+    projections = np.stack([(along_s - m * along).T @ Y[:, j] for j, m in enumerate(mu)],
+                           axis=1) if mu.size else np.zeros((along.shape[1], 0))
+    weighted = vectors[:, keep].T @ projections / np.sqrt(values[keep])[:, None]
+    return np.sqrt(np.sum(weighted ** 2, axis=0))
 
 
 def _next_block(world: World, product: np.ndarray, deflation: np.ndarray,
@@ -242,17 +251,9 @@ def _next_block(world: World, product: np.ndarray, deflation: np.ndarray,
     return _orthonormal(world, directions)
 
 
-def _orthonormal(world: World, block: np.ndarray, rank_cut: bool = False):
+def _orthonormal(world: World, block: np.ndarray):
     """CholQR2 of ``block``: orthonormal columns with its span. ``None`` when the block is
-    numerically rank deficient; with ``rank_cut`` the numerically dependent directions are
-    dropped instead (``None`` when none is left)."""
-    if rank_cut:
-        products = gram(world, block, block)
-        values, rotation = np.linalg.eigh(0.5 * (products + products.T))
-        keep = values > 1e-20 * max(float(values.max(initial=0.0)), np.finfo(float).tiny)
-        if not np.any(keep) or float(values.max(initial=0.0)) <= 0.0:
-            return None
-        block = combine(block, rotation[:, keep] / np.sqrt(values[keep]))
+    numerically rank deficient."""
     for _ in range(2):
         products = gram(world, block, block)
         try:

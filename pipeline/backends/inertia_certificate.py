@@ -38,7 +38,14 @@ from typing import Any
 
 import numpy as np
 
-from pipeline.backends.petsc_tools import apply, apply_transpose, gram, orthonormalize, petsc
+from pipeline.backends.petsc_tools import (
+    apply,
+    apply_transpose,
+    combine,
+    gram,
+    orthonormalize,
+    petsc,
+)
 from pipeline.backends.symmetric_factor import ShiftedSymmetricFactor
 from pipeline.parallel import World
 
@@ -100,7 +107,7 @@ def orthonormal_basis(world: World, columns: np.ndarray,
     products = gram(world, columns, columns)
     values, vectors = np.linalg.eigh(0.5 * (products + products.T))
     rank = values > relative_tolerance * values.max()
-    basis = columns @ (vectors[:, rank] / np.sqrt(values[rank]))
+    basis = combine(columns, vectors[:, rank] / np.sqrt(values[rank]))
     return orthonormalize(world, basis)
 
 
@@ -153,16 +160,18 @@ def certify_by_inertia(
         balanced = vectors / scaling[:, None]  # eigenvectors of Wb = D^-1 W D
         Q = orthonormal_basis(world, real_span(balanced))
     else:  # span(B C) = B span(C) for orthonormal B: the same rank test, on m x 2k numbers
-        Q = span[0] @ orthonormal_basis(World(), real_span(span[1]))
+        Q = combine(span[0], orthonormal_basis(World(), real_span(span[1])))
     k = Q.shape[1]
     dependent = k != values.size  # fewer independent directions than modes claimed
     work = W.createVecs()
     WQ = apply(W, Q * scaling[:, None], work) / scaling[:, None]  # Wb Q
     T = gram(world, Q, WQ)
-    R = WQ - Q @ T
+    R = WQ
+    R -= combine(Q, T)
     residual = float(np.sqrt(np.sum(world.sum(np.einsum("ij,ij->j", R, R)))))
     WtQ = apply_transpose(W, Q / scaling[:, None], work) * scaling[:, None]  # Wb^T Q
-    L = WtQ - Q @ T.T
+    L = WtQ
+    L -= combine(Q, T.T)
     left_residual = float(np.sqrt(np.sum(world.sum(np.einsum("ij,ij->j", L, L)))))
     del WQ, R, WtQ, L
     # Pseudospectral margin on the line Re z = level.

@@ -31,6 +31,7 @@ from pipeline.backends.petsc_tools import (
     apply,
     apply_transpose,
     column_dots,
+    combine,
     global_norms,
     gram,
     normalize_columns,
@@ -735,8 +736,8 @@ class SlepcBackend(SlepcAnalysis, Backend):
             Q = orthonormal_basis(self.world, np.column_stack([null, found]))
             WbQ = apply(W, Q * scaling[:, None]) / scaling[:, None]
             ritz, coefficients = np.linalg.eig(gram(self.world, Q, WbQ))
-            vectors = normalize_columns(self.world, (Q @ coefficients) * scaling[:, None],
-                                        start)
+            vectors = normalize_columns(self.world,
+                                        combine(Q, coefficients) * scaling[:, None], start)
             # the Ritz values are the Rayleigh quotients of the balanced Ritz vectors
             values = ritz.astype(np.complex128)
             chosen, _ = take_slowest(values, count, grouping_tolerance(values,
