@@ -38,9 +38,11 @@ def to_vec(template: Any, local: np.ndarray) -> Any:
     return vec
 
 
-def apply(matrix: Any, local: np.ndarray, work: tuple[Any, Any] | None = None) -> np.ndarray:
-    """``matrix @ x`` for local rows ``x`` (real or complex, ``[row]`` or ``[row, k]``)."""
-    return _apply(matrix, local, transpose=False, work=work)
+def apply(matrix: Any, local: np.ndarray, work: tuple[Any, Any] | None = None,
+          out: np.ndarray | None = None) -> np.ndarray:
+    """``matrix @ x`` for local rows ``x`` (real or complex, ``[row]`` or ``[row, k]``);
+    ``out``: a column-major real ``[row, k]`` array to write into (real ``x`` only)."""
+    return _apply(matrix, local, transpose=False, work=work, out=out)
 
 
 def apply_transpose(matrix: Any, local: np.ndarray,
@@ -50,7 +52,7 @@ def apply_transpose(matrix: Any, local: np.ndarray,
 
 
 def _apply(matrix: Any, local: np.ndarray, transpose: bool,
-           work: tuple[Any, Any] | None) -> np.ndarray:
+           work: tuple[Any, Any] | None, out: np.ndarray | None = None) -> np.ndarray:
     source, target = work if work is not None else matrix.createVecs()
     if transpose:
         source, target = target, source  # W^T maps the row layout to the column layout
@@ -59,7 +61,8 @@ def _apply(matrix: Any, local: np.ndarray, transpose: bool,
     # contiguous real columns in, contiguous columns out: no strided copies per column
     real = np.asfortranarray(np.hstack([columns.real, columns.imag]) if complex_ else columns,
                              dtype=np.float64)
-    out = np.empty((target.getLocalSize(), real.shape[1]), order="F")
+    if out is None or complex_:
+        out = np.empty((target.getLocalSize(), real.shape[1]), order="F")
     product = matrix.multTranspose if transpose else matrix.mult
     for j in range(real.shape[1]):  # a loop over vectors, not states
         source.placeArray(real[:, j])

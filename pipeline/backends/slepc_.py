@@ -66,6 +66,13 @@ LANCZOS_MAX_COLUMNS = 400
 # Ritz pairs of the symmetric part beyond the wanted ones, at a loose tolerance: they only
 # place the certificate's test shift below the last wanted group
 LOOSE_MODES = 2
+# the coarse start of the symmetric-part search (coarse_start.py), for models that group
+# their states (Model.state_aggregates): tried from this size on (below it the search from a
+# pseudo-random start is cheap), with aggregates of about this many states and a test shift
+# in the first gap of at least this relative size among the coarse estimates
+COARSE_START_MIN_STATES = 50_000
+COARSE_AGGREGATE = 16
+COARSE_GAP = 0.05
 INNER_SOLVERS = ("direct", "iterative")
 PRECONDITIONERS = {"auto": "bjacobi", "bjacobi": "bjacobi", "gamg": "gamg", "hypre": "hypre",
                    "asm": "asm"}
@@ -568,9 +575,13 @@ class SlepcBackend(SlepcAnalysis, Backend):
         # multiply both the residual and the condition by the conditioning of D.
         scaling = (self._balancing(values, local) if balance
                        else np.ones(local.shape[0]))
-        balanced = local / scaling[:, None]
-        balanced = balanced / global_norms(self.world, balanced)[None, :]
-        balanced_residuals = self._residuals(W, values, balanced, scale, scaling)
+        if self.world.min(float(scaling.min(initial=1.0))) == 1.0 == self.world.max(
+                float(scaling.max(initial=1.0))):  # D = I: the same unit vectors
+            balanced, balanced_residuals = local, residuals
+        else:
+            balanced = local / scaling[:, None]
+            balanced = balanced / global_norms(self.world, balanced)[None, :]
+            balanced_residuals = self._residuals(W, values, balanced, scale, scaling)
         left_values, left, left_method = self._left_vectors(operator, values, balanced,
                                                             scaling, scale, tolerance,
                                                             stationary, balance)
@@ -671,11 +682,7 @@ class SlepcBackend(SlepcAnalysis, Backend):
         (``missing``) and searched for again with everything found so far deflated. The
         certificate decides; nothing is assumed."""
         from pipeline.backends.block_lanczos import shift_invert_lanczos, start_block
-        from pipeline.backends.inertia_certificate import (
-            certify_by_inertia,
-            orthonormal_basis,
-            symmetric_part,
-        )
+        from pipeline.backends.inertia_certificate import orthonormal_basis, symmetric_part
         from pipeline.backends.symmetric_factor import ShiftedSymmetricFactor
 
         W = operator.handle["W"]
@@ -708,9 +715,17 @@ class SlepcBackend(SlepcAnalysis, Backend):
         loose = min(1e3 * floor, 1e-6)
         record = {"search": "symmetric part", "method": "block Lanczos, shift-and-invert "
                   "(MUMPS LDL^T)", "block_size": LANCZOS_BLOCK, "rounds": 0, "converged": 0,
-                  "iterations": 0, "solved_columns": 0}
+                  "iterations": 0, "solved_columns": 0, "start": "pseudo-random"}
         cert, test_shift = None, None
-        for _ in range(MAX_ROUNDS):  # a loop over deflated restarts
+        outcome = None
+        labels = None
+        if n >= COARSE_START_MIN_STATES:
+            labels = operator.model.state_aggregates(start, stop, COARSE_AGGREGATE)
+        if labels is not None:
+            outcome = self._coarse_started_search(W, S, norm_s, scaling, null, labels,
+                                                  factor, apply_s, tight, floor, above,
+                                                  record, start)
+        for _ in range(MAX_ROUNDS if outcome is None else 0):  # deflated restarts
             factor.at(above)
             deflation = orthonormal_basis(self.world, np.column_stack([null, found]))
             room = n - deflation.shape[1]
@@ -732,14 +747,8 @@ class SlepcBackend(SlepcAnalysis, Backend):
             log(f"solve: block Lanczos on the symmetric part: {int(keep_new.sum())} of "
                 f"{nev} converged after {search.steps} steps ({search.columns} solved "
                 "columns)")
-            # Rayleigh–Ritz of Wb on span(sqrt(p), S's eigenvectors).
-            Q = orthonormal_basis(self.world, np.column_stack([null, found]))
-            WbQ = apply(W, Q * scaling[:, None]) / scaling[:, None]
-            ritz, coefficients = np.linalg.eig(gram(self.world, Q, WbQ))
-            vectors = normalize_columns(self.world,
-                                        combine(Q, coefficients) * scaling[:, None], start)
-            # the Ritz values are the Rayleigh quotients of the balanced Ritz vectors
-            values = ritz.astype(np.complex128)
+            values, vectors, Q, coefficients = self._balanced_ritz(W, scaling, null, found,
+                                                                   start)
             chosen, _ = take_slowest(values, count, grouping_tolerance(values,
                                                                        operator.check.norm1))
             threshold = float(values[chosen].real.min())
@@ -753,12 +762,8 @@ class SlepcBackend(SlepcAnalysis, Backend):
             if test_shift is None or not (float(below.max()) < test_shift < threshold):
                 test_shift = candidate
             keep = values.real > test_shift
-            cert = certify_by_inertia(self.world, W, scaling, values[keep], vectors[:, keep],
-                                      test_shift, factor=factor,
-                                      span=(Q, coefficients[:, keep]))
-            log(f"solve: symmetric-part search, certificate at t = {test_shift:.3e}: "
-                f"{cert.above_shift} above t, {cert.captured} in the found span -> "
-                + ("certified" if cert.certified else f"{cert.missing} missing"))
+            cert = self._certify_found(W, scaling, values, vectors, Q, coefficients, keep,
+                                       test_shift, factor)
             if cert.certified or cert.missing <= 0:
                 break
             tight = cert.missing
@@ -770,6 +775,8 @@ class SlepcBackend(SlepcAnalysis, Backend):
             vec.destroy()
         S.destroy()
         record["seconds"] = time.perf_counter() - started
+        if outcome is not None:
+            values, vectors, keep, cert = outcome
         if cert is None:
             return {"values": values, "vectors": vectors, "record": record, "certified": False,
                     "certificate": {"kind": "inertia", "note": "NOT CERTIFIED: no gap found"}}
@@ -778,6 +785,98 @@ class SlepcBackend(SlepcAnalysis, Backend):
         return {"values": values[keep] if cert.certified else values,
                 "vectors": vectors[:, keep] if cert.certified else vectors,
                 "record": record, "certified": cert.certified, "certificate": cert.as_dict()}
+
+    def _coarse_started_search(self, W: Any, S: Any, norm_s: float, scaling: np.ndarray,
+                               null: np.ndarray, labels: np.ndarray, factor: Any,
+                               apply_s: Callable, tight: int, floor: float, above: float,
+                               record: dict[str, Any], start: int) -> tuple | None:
+        """The one-factorization try of :meth:`_symmetric_part_search`: estimates and start
+        vectors from the aggregated ``S`` (``coarse_start.py``) place the test shift ``t``;
+        one ``LDL^T`` of ``t I - S`` gives the count above ``t`` (inertia), the block
+        Lanczos search for exactly those from the coarse start, and the certificate.
+        ``(values, vectors, keep, certificate)`` when it certifies, else ``None`` (the
+        caller then searches from a pseudo-random start; ``record`` says what happened)."""
+        from pipeline.backends.block_lanczos import shift_invert_lanczos
+        from pipeline.backends.coarse_start import coarse_start
+
+        n = W.getSize()[0]
+        coarse = coarse_start(self.world, S, null, labels, tight + LOOSE_MODES, above)
+        if coarse is None:
+            record["coarse_start"] = {"outcome": "no usable coarse space"}
+            return None
+        info = record["coarse_start"] = dict(coarse.info)
+        estimates = coarse.estimates
+        # the test shift: half-way across the first clear gap after the wanted ones (the
+        # estimates are lower bounds; the inertia counts what is really above)
+        gaps = estimates[tight - 1:-1] - estimates[tight:]
+        clear = np.flatnonzero(gaps > COARSE_GAP * np.abs(estimates[tight - 1:-1])
+                               + 1e-12 * norm_s)
+        if clear.size == 0:
+            info["outcome"] = "no clear gap among the coarse estimates"
+            return None
+        j = tight + int(clear[0])  # estimates[j - 1] > t > estimates[j]
+        shift = 0.5 * (float(estimates[j - 1]) + float(estimates[j]))
+        negative, zero, _ = factor.at(shift)
+        above_shift = negative - 1  # the null vector's eigenvalue 0 is above too
+        info.update(shift=shift, above_shift=int(negative))
+        if zero or not tight <= above_shift <= coarse.vectors.shape[1]:
+            info["outcome"] = (f"{negative} eigenvalues of S above the test shift: not the "
+                               "count the coarse start was built for")
+            return None
+        loose = min(1e2 * floor, 1e-8)  # every mode above t enters the certificate
+        search = shift_invert_lanczos(
+            self.world, factor.solve, apply_s, coarse.vectors, null[:, None],
+            (above_shift, _tight_then_loose(tight, floor, loose, norm_s)), norm_s,
+            max_columns=max(LANCZOS_MAX_COLUMNS, 4 * above_shift), dimension=n)
+        record.update(rounds=1, converged=int(np.sum(search.residuals <= search.tolerances)),
+                      iterations=int(search.steps), solved_columns=int(search.columns),
+                      block_size=int(coarse.vectors.shape[1]),
+                      start=f"aggregated S ({coarse.info['coarse_states']} states)")
+        log(f"solve: block Lanczos at the test shift {shift:.3e} from the coarse start: "
+            f"{record['converged']} of {above_shift} converged after {search.steps} steps "
+            f"({search.columns} solved columns)")
+        if not search.converged:
+            info["outcome"] = "the search from the coarse start did not converge"
+            return None
+        values, vectors, Q, coefficients = self._balanced_ritz(W, scaling, null,
+                                                               search.vectors, start)
+        keep = values.real > shift
+        cert = self._certify_found(W, scaling, values, vectors, Q, coefficients, keep, shift,
+                                   factor)
+        info["outcome"] = "certified" if cert.certified else "not certified: " + cert.note
+        return (values, vectors, keep, cert) if cert.certified else None
+
+    def _balanced_ritz(self, W: Any, scaling: np.ndarray, null: np.ndarray,
+                       found: np.ndarray, start: int) -> tuple:
+        """Rayleigh–Ritz of ``Wb = D^-1 W D`` on ``span(null, found)``: ``(values, vectors,
+        Q, coefficients)``: the Ritz values (complex; the Rayleigh quotients of the balanced
+        Ritz vectors), the Ritz vectors of ``W`` (unit columns, local rows), the orthonormal
+        basis ``Q`` and the coefficients of the balanced Ritz vectors in it."""
+        from pipeline.backends.inertia_certificate import orthonormal_basis
+
+        Q = np.asfortranarray(np.column_stack([null, found]))
+        products = gram(self.world, Q, Q)
+        if np.abs(products - np.eye(Q.shape[1])).max(initial=0.0) > 1e-12:
+            Q = orthonormal_basis(self.world, Q)  # (the search's vectors already are)
+        WbQ = apply(W, Q * scaling[:, None]) / scaling[:, None]
+        ritz, coefficients = np.linalg.eig(gram(self.world, Q, WbQ))
+        del WbQ
+        vectors = normalize_columns(self.world, combine(Q, coefficients) * scaling[:, None],
+                                    start)
+        return ritz.astype(np.complex128), vectors, Q, coefficients
+
+    def _certify_found(self, W: Any, scaling: np.ndarray, values: np.ndarray,
+                       vectors: np.ndarray, Q: np.ndarray, coefficients: np.ndarray,
+                       keep: np.ndarray, shift: float, factor: Any):
+        """The inertia certificate of the found modes ``keep`` at ``shift`` on ``factor``."""
+        from pipeline.backends.inertia_certificate import certify_by_inertia
+
+        cert = certify_by_inertia(self.world, W, scaling, values[keep], vectors[:, keep],
+                                  shift, factor=factor, span=(Q, coefficients[:, keep]))
+        log(f"solve: symmetric-part search, certificate at t = {shift:.3e}: "
+            f"{cert.above_shift} above t, {cert.captured} in the found span -> "
+            + ("certified" if cert.certified else f"{cert.missing} missing"))
+        return cert
 
     def _rayleigh_quotients(self, W: Any, local: np.ndarray) -> np.ndarray:
         products = apply(W, local)

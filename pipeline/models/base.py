@@ -134,6 +134,13 @@ class Model(ABC):
         """Linear observables whose stationary expectations are stored (name -> definition)."""
         return {}
 
+    def state_aggregates(self, start: int, stop: int, size: int) -> np.ndarray | None:
+        """Optional: labels ``[stop - start]`` grouping states ``start..stop-1`` into compact
+        aggregates of about ``size`` strongly coupled states (equal label = one aggregate),
+        from which the slowest-mode search of the slepc backend builds a coarse start;
+        None (the default) when the model knows no such grouping."""
+        return None
+
     # -- optional hooks of the analysis stage (see DEVELOPERS.md, "Channels and exits") ----
 
     def channel_names(self) -> tuple[str, ...]:

@@ -136,6 +136,15 @@ class LatticeWalk(Model):
     def state_labels(self, start: int, stop: int) -> dict[str, np.ndarray]:
         return {"coordinate": self.coordinates(start, stop)}
 
+    def state_aggregates(self, start: int, stop: int, size: int) -> np.ndarray:
+        """Blocks of ``s^d`` neighbouring sites, ``s = round(size^(1/d))`` per axis (fewer
+        along a shorter axis), labelled by their flat block index."""
+        side = max(1, round(size ** (1.0 / self.dims)))
+        sides = [min(side, extent) for extent in self.shape]
+        blocks = tuple(-(-extent // s) for extent, s in zip(self.shape, sides, strict=True))
+        coordinates = self.coordinates(start, stop) // np.array(sides, dtype=np.int64)
+        return np.ravel_multi_index(tuple(coordinates.T), blocks)
+
     def row_block(self, start: int, stop: int) -> RowBlock:
         """Rows ``start..stop-1`` of ``W`` (incoming rates and the diagonal)."""
         rows = stop - start
