@@ -113,9 +113,11 @@ def shift_invert_lanczos(
     u = apply_matrix(first)
     projected = gram(world, first, u)
     s_u = apply_matrix(u)
-    metric_u = gram(world, u, u) - (gram(world, deflation, u).T @ gram(world, deflation, u)
-                                    if deflation.shape[1] else 0.0)
-    along = [gram(world, first, u)]
+    metric_u = gram(world, u, u)
+    if deflation.shape[1]:
+        in_deflation = gram(world, deflation, u)
+        metric_u -= in_deflation.T @ in_deflation
+    along = [projected.copy()]  # V_0^T u = V_0^T S V_0
     along_s = [gram(world, first, s_u)]
     columns = steps = 0
     newest = first
@@ -188,7 +190,8 @@ class _Basis:
         return self.array[:, self.size - width:self.size]
 
 
-def _project(world: World, block: np.ndarray, deflation: np.ndarray, basis) -> np.ndarray:
+def _project(world: World, block: np.ndarray, deflation: np.ndarray,
+             basis: _Basis) -> np.ndarray:
     """``block`` orthogonalized against the deflation space and the basis by classical
     Gram–Schmidt, a second pass where the first cancelled most of a column (classical
     Gram–Schmidt twice is as good as modified; Giraud et al. 2005, Numer. Math. 101, 87;

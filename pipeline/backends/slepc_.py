@@ -673,14 +673,19 @@ class SlepcBackend(SlepcAnalysis, Backend):
     def _symmetric_part_search(self, operator: Operator, count: int, tolerance: float,
                                stationary: np.ndarray) -> dict[str, Any]:
         """For a normal balanced generator: the slowest modes from the largest eigenvalues of
-        its symmetric part ``S`` (a real symmetric problem: block Lanczos on the shifted
-        inverse ``(sigma I - S)^-1`` about a point ``sigma`` just above 0, one MUMPS ``LDL^T``,
-        the known null vector ``sqrt(p)`` deflated), then Rayleigh–Ritz of ``Wb`` on their
-        span, and the inertia certificate at a test shift in the gap of ``S``'s eigenvalues
-        (the same factorization refactored there: the symbolic analysis is reused). Copies of
-        a multiple eigenvalue beyond the block width are counted by the certificate
-        (``missing``) and searched for again with everything found so far deflated. The
-        certificate decides; nothing is assumed."""
+        its symmetric part ``S`` (a real symmetric problem, the known null vector ``sqrt(p)``
+        deflated), then Rayleigh–Ritz of ``Wb`` on their span, and the inertia certificate
+        at a test shift ``t`` in the gap of ``S``'s eigenvalues.
+
+        When the model groups its states (``Model.state_aggregates``) and the problem is
+        large, the aggregated ``S`` first gives estimates that place ``t`` and start vectors
+        (:meth:`_coarse_started_search`): one MUMPS ``LDL^T`` of ``t I - S`` then serves the
+        count above ``t``, the search and the certificate. Otherwise, or when that does not
+        certify: block Lanczos on ``(sigma I - S)^-1`` about a point ``sigma`` just above 0
+        from a pseudo-random start, and the certificate on the same factorization refactored
+        at ``t`` (the symbolic analysis is reused). Copies of a multiple eigenvalue beyond the
+        block width are counted by the certificate (``missing``) and searched for again with
+        everything found so far deflated. The certificate decides; nothing is assumed."""
         from pipeline.backends.block_lanczos import shift_invert_lanczos, start_block
         from pipeline.backends.inertia_certificate import orthonormal_basis, symmetric_part
         from pipeline.backends.symmetric_factor import ShiftedSymmetricFactor
@@ -828,12 +833,13 @@ class SlepcBackend(SlepcAnalysis, Backend):
             self.world, factor.solve, apply_s, coarse.vectors, null[:, None],
             (above_shift, _tight_then_loose(tight, floor, loose, norm_s)), norm_s,
             max_columns=max(LANCZOS_MAX_COLUMNS, 4 * above_shift), dimension=n)
-        record.update(rounds=1, converged=int(np.sum(search.residuals <= search.tolerances)),
-                      iterations=int(search.steps), solved_columns=int(search.columns),
-                      block_size=int(coarse.vectors.shape[1]),
-                      start=f"aggregated S ({coarse.info['coarse_states']} states)")
+        converged = int(np.sum(search.residuals <= search.tolerances))
+        # the work counts (a fallback after this adds its own); what started the search is
+        # recorded only when this try is the one kept
+        record.update(rounds=1, iterations=int(search.steps),
+                      solved_columns=int(search.columns))
         log(f"solve: block Lanczos at the test shift {shift:.3e} from the coarse start: "
-            f"{record['converged']} of {above_shift} converged after {search.steps} steps "
+            f"{converged} of {above_shift} converged after {search.steps} steps "
             f"({search.columns} solved columns)")
         if not search.converged:
             info["outcome"] = "the search from the coarse start did not converge"
@@ -844,7 +850,11 @@ class SlepcBackend(SlepcAnalysis, Backend):
         cert = self._certify_found(W, scaling, values, vectors, Q, coefficients, keep, shift,
                                    factor)
         info["outcome"] = "certified" if cert.certified else "not certified: " + cert.note
-        return (values, vectors, keep, cert) if cert.certified else None
+        if not cert.certified:
+            return None
+        record.update(converged=converged, block_size=int(coarse.vectors.shape[1]),
+                      start=f"aggregated S ({coarse.info['coarse_states']} states)")
+        return values, vectors, keep, cert
 
     def _balanced_ritz(self, W: Any, scaling: np.ndarray, null: np.ndarray,
                        found: np.ndarray, start: int) -> tuple:
