@@ -108,3 +108,23 @@ def test_residual_estimate_from_the_krylov_relation_matches_the_residual():
     X = V @ Y
     exact = np.linalg.norm(A @ X - X * mu, axis=0)
     np.testing.assert_allclose(estimate, exact, rtol=1e-6, atol=1e-12)
+
+
+def test_checking_every_step_finds_the_same_pairs_as_the_estimate():
+    """``estimate=False`` (residuals computed after every step) and the Krylov-relation
+    estimate stop on the same converged pairs, against LAPACK."""
+    A = _laplacian_2d(16)
+    n = A.shape[0]
+    exact = np.sort(np.linalg.eigvalsh(A))[::-1][:9]
+    spectrum = np.linalg.eigvalsh(A)
+    shift = spectrum.max() + 1e-3 * np.abs(spectrum).max()
+    inverse = np.linalg.inv(shift * np.eye(n) - A)
+    results = [shift_invert_lanczos(World(), lambda X: inverse @ X, lambda X: A @ X,
+                                    start_block(0, n, 4), np.zeros((n, 0)), np.full(9, 1e-11),
+                                    8.0, max_columns=400, dimension=n, estimate=estimate)
+               for estimate in (True, False)]
+    for result in results:
+        assert result.converged
+        np.testing.assert_allclose(result.values, exact, atol=1e-10)
+        assert result.residuals.max() <= 1e-11
+    assert results[1].steps <= results[0].steps  # checked every step: never later

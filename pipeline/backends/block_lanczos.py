@@ -32,7 +32,14 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from pipeline.backends.petsc_tools import combine, global_norms, gram
+from pipeline.backends.petsc_tools import (
+    add_combination,
+    combine,
+    global_norms,
+    gram,
+    right_solve_lower_transposed,
+    subtract_combination,
+)
 from pipeline.parallel import World
 
 __all__ = ["LanczosResult", "shift_invert_lanczos", "start_block"]
@@ -73,6 +80,7 @@ def shift_invert_lanczos(
     scale: float,
     max_columns: int,
     dimension: int,
+    estimate: bool = True,
 ) -> LanczosResult:
     """The ``m`` largest eigenvalues of ``S`` restricted to the orthogonal complement of
     ``deflation`` (an invariant subspace of ``S``, e.g. its known null vector).
@@ -87,6 +95,10 @@ def shift_invert_lanczos(
     scale: a norm of ``S`` (the residuals' unit).
     max_columns: the largest basis (memory: ``max_columns`` vectors per rank).
     dimension: the global vector length (the basis can not exceed ``dimension - d``).
+    estimate: check the Ritz pairs only when their residual estimate (two extra products
+    with ``S`` at the start) says they are ready; without it, on the computed residuals
+    after every step (cheaper when one or two steps are expected, as from a good start).
+    ``start`` is overwritten.
     """
     if isinstance(tolerances, tuple):
         m, tolerance_of = tolerances
@@ -99,10 +111,9 @@ def shift_invert_lanczos(
     max_columns = max(min(max_columns, room), 1)
     local, width = start.shape
     scale = max(scale, np.finfo(float).tiny)
-    # the basis, column-major so the filled part is one contiguous operand of every
-    # projection; it grows by doubling (never reserving max_columns up front, which strict
-    # overcommit settings on cluster nodes would refuse)
-    basis = _Basis(local, min(max_columns + width, 16 * width + m))
+    # the basis: a list of orthonormal column-major blocks (appending never copies, and no
+    # capacity is reserved up front, which strict overcommit settings would refuse)
+    basis = _Basis()
     first = _orthonormal(world, _project(world, start, deflation, basis))
     if first is None:
         raise ValueError("the start block has no direction outside the deflation space")
@@ -112,13 +123,16 @@ def shift_invert_lanczos(
     # projections a = V^T u, c = V^T S u
     u = apply_matrix(first)
     projected = gram(world, first, u)
-    s_u = apply_matrix(u)
-    metric_u = gram(world, u, u)
-    if deflation.shape[1]:
-        in_deflation = gram(world, deflation, u)
-        metric_u -= in_deflation.T @ in_deflation
-    along = [projected.copy()]  # V_0^T u = V_0^T S V_0
-    along_s = [gram(world, first, s_u)]
+    if estimate:
+        s_u = apply_matrix(u)
+        metric_u = gram(world, u, u)
+        if deflation.shape[1]:
+            in_deflation = gram(world, deflation, u)
+            metric_u -= in_deflation.T @ in_deflation
+        along = [projected.copy()]  # V_0^T u = V_0^T S V_0
+        along_s = [gram(world, first, s_u)]
+    else:
+        del u
     columns = steps = 0
     newest = first
     while True:
@@ -137,57 +151,68 @@ def shift_invert_lanczos(
         if new is not None:
             s_new = apply_matrix(new)
             # H's new block column, from one pass over the basis
-            coupling = gram(world, basis.filled(), s_new)
+            coupling = basis.gram(world, s_new)
             corner = gram(world, new, s_new)
             del s_new
             projected = np.block([[projected, coupling], [coupling.T, corner]])
             basis.append(new)
-            along.append(gram(world, new, u))
-            along_s.append(gram(world, new, s_u))
+            if estimate:
+                along.append(gram(world, new, u))
+                along_s.append(gram(world, new, s_u))
         symmetric = 0.5 * (projected + projected.T)
         values, rotations = np.linalg.eigh(symmetric)
         order = np.argsort(values)[::-1][:m]
         mu, Y = values[order], rotations[:, order]
         wanted = tolerance_of(mu)
         full = new is None
-        estimate = _residual_estimate(metric_u, np.vstack(along), np.vstack(along_s), mu,
-                                      Y) / scale
-        ready = mu.size == m and bool(np.all(estimate <= wanted))
+        ready = mu.size == m
+        if ready and estimate:
+            residual_estimate = _residual_estimate(metric_u, np.vstack(along),
+                                                   np.vstack(along_s), mu, Y) / scale
+            ready = bool(np.all(residual_estimate <= wanted))
         if ready or full:
-            ritz = combine(basis.filled(), Y)
+            ritz = basis.combine(Y)
             difference = apply_matrix(ritz)
-            difference -= ritz * mu[None, :]
+            subtract_combination(difference, ritz, np.diag(mu))
             residuals = global_norms(world, difference) / scale
             del difference
             converged = mu.size == m and bool(np.all(residuals <= wanted))
             if converged or full:
                 return LanczosResult(mu, ritz, residuals, wanted, converged, steps, columns)
             del ritz
-        newest = basis.last(new.shape[1])
+        newest = basis.blocks[-1]
 
 
 class _Basis:
-    """Orthonormal columns ``[row, size]`` in a column-major array that doubles when full."""
+    """Orthonormal columns kept as a list of column-major blocks ``[row, b_i]``."""
 
-    def __init__(self, rows: int, capacity: int) -> None:
-        self.array = np.empty((rows, max(capacity, 1)), order="F")
+    def __init__(self) -> None:
+        self.blocks: list[np.ndarray] = []
         self.size = 0
 
     def append(self, block: np.ndarray) -> None:
-        needed = self.size + block.shape[1]
-        if needed > self.array.shape[1]:
-            grown = np.empty((self.array.shape[0], max(needed, 2 * self.array.shape[1])),
-                             order="F")
-            grown[:, :self.size] = self.array[:, :self.size]
-            self.array = grown
-        self.array[:, self.size:needed] = block
-        self.size = needed
+        self.blocks.append(np.asfortranarray(block))
+        self.size += block.shape[1]
 
-    def filled(self) -> np.ndarray:
-        return self.array[:, :self.size]
+    def gram(self, world: World, other: np.ndarray) -> np.ndarray:
+        """``V^T other`` (``[size, k]``), one reduction for all blocks."""
+        if not self.blocks:
+            return np.zeros((0, other.shape[1]))
+        return world.sum(np.ascontiguousarray(np.vstack([block.T @ other
+                                                         for block in self.blocks])))
 
-    def last(self, width: int) -> np.ndarray:
-        return self.array[:, self.size - width:self.size]
+    def combine(self, coefficients: np.ndarray) -> np.ndarray:
+        """``V @ coefficients`` (column-major), accumulated block by block in place."""
+        out = None
+        offset = 0
+        for block in self.blocks:
+            part = coefficients[offset:offset + block.shape[1]]
+            if out is None:
+                out = combine(block, part)
+            else:
+                add_combination(out, block, part)
+            offset += block.shape[1]
+        return out
 
 
 def _project(world: World, block: np.ndarray, deflation: np.ndarray,
@@ -197,14 +222,20 @@ def _project(world: World, block: np.ndarray, deflation: np.ndarray,
     Gram–Schmidt twice is as good as modified; Giraud et al. 2005, Numer. Math. 101, 87;
     from memory). ``block`` is the caller's own array: it is updated in place when it is
     column-major."""
-    spaces = [space for space in (deflation, basis.filled()) if space.shape[1]]
+    spaces = [space for space in (deflation, *basis.blocks) if space.shape[1]]
     if not spaces:
         return block
     block = np.asfortranarray(block)
     before = global_norms(world, block)
     for _ in range(2):
+        # all coefficients from the same block, in one reduction, then one update per space
+        coefficients = world.sum(np.ascontiguousarray(np.vstack([space.T @ block
+                                                                 for space in spaces])))
+        offset = 0
         for space in spaces:
-            block -= combine(space, gram(world, space, block))
+            width = space.shape[1]
+            subtract_combination(block, space, coefficients[offset:offset + width])
+            offset += width
         after = global_norms(world, block)
         # "twice is enough" (Kahan, in Parlett 1998, The Symmetric Eigenvalue Problem;
         # from memory): a second pass only where the first cancelled most of a column
@@ -263,7 +294,7 @@ def _orthonormal(world: World, block: np.ndarray):
             factor = np.linalg.cholesky(0.5 * (products + products.T))
         except np.linalg.LinAlgError:
             return None
-        block = combine(block, np.linalg.inv(factor).T)  # block factor^-T (one gemm)
+        block = right_solve_lower_transposed(block, factor)  # block factor^-T, in place
     return block
 
 

@@ -32,7 +32,14 @@ from typing import Any
 import numpy as np
 
 from pipeline.backends.block_lanczos import shift_invert_lanczos, start_block
-from pipeline.backends.petsc_tools import apply, combine, gram, orthonormalize, petsc
+from pipeline.backends.petsc_tools import (
+    apply,
+    combine,
+    gram,
+    orthonormalize,
+    petsc,
+    subtract_combination,
+)
 from pipeline.backends.symmetric_factor import ShiftedSymmetricFactor
 from pipeline.parallel import World
 
@@ -112,8 +119,8 @@ def coarse_start(world: World, S: Any, null: np.ndarray, labels: np.ndarray, wan
         step *= inverse_diagonal
         vectors += step
     del step
-    vectors -= null[:, None] * world.sum(null @ vectors)[None, :]
-    basis = orthonormalize(world, vectors)
+    subtract_combination(vectors, null[:, None], world.sum(null @ vectors)[None, :])
+    basis = orthonormalize(world, vectors, overwrite=True)
     del vectors
     products = apply(S, basis, fine_work)
     projected = gram(world, basis, products)

@@ -38,14 +38,8 @@ from typing import Any
 
 import numpy as np
 
-from pipeline.backends.petsc_tools import (
-    apply,
-    apply_transpose,
-    combine,
-    gram,
-    orthonormalize,
-    petsc,
-)
+from pipeline.backends.petsc_tools import combine, gram, orthonormalize, petsc
+from pipeline.backends.subspace_residuals import SubspaceResiduals, subspace_residuals
 from pipeline.backends.symmetric_factor import ShiftedSymmetricFactor
 from pipeline.parallel import World
 
@@ -108,7 +102,7 @@ def orthonormal_basis(world: World, columns: np.ndarray,
     values, vectors = np.linalg.eigh(0.5 * (products + products.T))
     rank = values > relative_tolerance * values.max()
     basis = combine(columns, vectors[:, rank] / np.sqrt(values[rank]))
-    return orthonormalize(world, basis)
+    return orthonormalize(world, basis, overwrite=True)
 
 
 def symmetric_part(W: Any, scaling: np.ndarray) -> tuple[Any, float]:
@@ -137,6 +131,7 @@ def certify_by_inertia(
     options_prefix: str = "gapline_cert_",
     factor: ShiftedSymmetricFactor | None = None,
     span: tuple[np.ndarray, np.ndarray] | None = None,
+    subspace: SubspaceResiduals | None = None,
 ) -> InertiaCertificate:
     """Decide whether ``values`` (found eigenvalues, all with real part > ``shift``; their
     right eigenvectors ``vectors``, local rows ``[row, k]``) are all of ``W``'s eigenvalues
@@ -150,30 +145,31 @@ def certify_by_inertia(
     ``span``: ``(B, C)`` when the caller knows the balanced eigenvectors as ``B C`` (``B``
     orthonormal real local rows ``[row, m]``, ``C`` complex ``[m, k]``, the same on every
     rank): the basis is then ``B`` times an orthonormal basis of the small ``real_span(C)``,
-    with no pass over 10^6-row blocks.
+    with no pass over 10^6-row blocks. ``subspace``: the caller's
+    :func:`subspace_residuals` of ``B``, used when the found modes span all of ``B``.
     """
     started = time.perf_counter()
     slowest_kept = float(np.min(values.real))
     level = 0.5 * (shift + slowest_kept)
+    given = None
     gap = slowest_kept - level  # = level - shift
     if span is None:
         balanced = vectors / scaling[:, None]  # eigenvectors of Wb = D^-1 W D
         Q = orthonormal_basis(world, real_span(balanced))
     else:  # span(B C) = B span(C) for orthonormal B: the same rank test, on m x 2k numbers
-        Q = combine(span[0], orthonormal_basis(World(), real_span(span[1])))
+        small = orthonormal_basis(World(), real_span(span[1]))
+        # all of span(B): B itself is an orthonormal basis of it (every quantity below is
+        # invariant under an orthogonal change of basis)
+        whole = small.shape[1] == span[0].shape[1]
+        Q = span[0] if whole else combine(span[0], small)
+        if whole:
+            given = subspace
     k = Q.shape[1]
     dependent = k != values.size  # fewer independent directions than modes claimed
-    work = W.createVecs()
-    WQ = apply(W, Q * scaling[:, None], work) / scaling[:, None]  # Wb Q
-    T = gram(world, Q, WQ)
-    R = WQ
-    R -= combine(Q, T)
-    residual = float(np.sqrt(np.sum(world.sum(np.einsum("ij,ij->j", R, R)))))
-    WtQ = apply_transpose(W, Q / scaling[:, None], work) * scaling[:, None]  # Wb^T Q
-    L = WtQ
-    L -= combine(Q, T.T)
-    left_residual = float(np.sqrt(np.sum(world.sum(np.einsum("ij,ij->j", L, L)))))
-    del WQ, R, WtQ, L
+    # R = Wb Q - Q T and L = Wb^T Q - Q T^T, T = Q^T Wb Q (subspace_residuals.py)
+    residuals = given if given is not None else subspace_residuals(world, W, Q, scaling)
+    T = residuals.T
+    residual, left_residual = residuals.right_norm, residuals.left_norm
     # Pseudospectral margin on the line Re z = level.
     ritz, ritz_vectors = np.linalg.eig(T)
     try:

@@ -37,6 +37,7 @@ from pipeline.backends.petsc_tools import (
     normalize_columns,
     petsc,
     start_vector,
+    subtract_combination,
 )
 from pipeline.backends.slepc_analysis import SlepcAnalysis
 from pipeline.errors import BackendError, ModelError, SolverError
@@ -501,6 +502,7 @@ class SlepcBackend(SlepcAnalysis, Backend):
         certified = False
         eps_seconds = 0.0
         path = "general"
+        residual_data = kept = None
         # balancing by sqrt(p) needs p > 0 everywhere: not with transient states or several
         # closed classes (p vanishes there, up to rounding noise), where D = I is used
         balance = operator.irreducible is not False
@@ -510,7 +512,11 @@ class SlepcBackend(SlepcAnalysis, Backend):
             rounds.append(found["record"])
             eps_seconds += found["record"]["seconds"]
             values, local = found["values"], found["vectors"]
-            residuals = self._residuals(W, values, local, scale)
+            if found.get("subspace") is not None:  # every residual from k x k numbers
+                residual_data, kept = found["subspace"]
+                residuals = residual_data.residuals(values, kept) / max(scale, 1e-300)
+            else:
+                residuals = self._residuals(W, values, local, scale)
             tol = grouping_tolerance(values, scale)
             chosen, group_complete = take_slowest(values, count, tol)
             certificate, certified = found["certificate"], found["certified"]
@@ -518,6 +524,7 @@ class SlepcBackend(SlepcAnalysis, Backend):
             if not certified:
                 log("solve: the symmetric-part search did not certify; searching W itself")
         while not certified:
+            residual_data = None
             solver = self._shifted_solver(operator)
             nev = max(1, min(nev, cap))
             ncv = min(n - 1, max(4 * nev, 64))
@@ -573,23 +580,37 @@ class SlepcBackend(SlepcAnalysis, Backend):
         # similarity, so a first-order bound there bounds the same eigenvalue): for
         # reversible chains they are those of a symmetric matrix, where W's own basis would
         # multiply both the residual and the condition by the conditioning of D.
-        scaling = (self._balancing(values, local) if balance
+        if residual_data is not None:
+            # the symmetric-part search's subspace residuals give the balanced residuals,
+            # the left residuals of the right vectors and their inner products directly
+            balanced_residuals = residual_data.balanced_residuals(values, kept) / max(
+                scale, 1e-300)
+            left_residuals = residual_data.left_residuals(values, kept) / max(scale, 1e-300)
+            if float(left_residuals.max(initial=0.0)) > max(1e3 * tolerance, 1e-9):
+                residual_data = None  # the right vectors are no left ones: solve for them
+            else:
+                left_values = values.copy()
+                left_method = ("right vectors of D^-1 W D (left residual checked, from the "
+                               "subspace residuals)")
+                products = (residual_data.vector_gram(kept),) * 3
+        if residual_data is None:
+            scaling = (self._balancing(values, local) if balance
                        else np.ones(local.shape[0]))
-        if self.world.min(float(scaling.min(initial=1.0))) == 1.0 == self.world.max(
-                float(scaling.max(initial=1.0))):  # D = I: the same unit vectors
-            balanced, balanced_residuals = local, residuals
-        else:
-            balanced = local / scaling[:, None]
-            balanced = balanced / global_norms(self.world, balanced)[None, :]
-            balanced_residuals = self._residuals(W, values, balanced, scale, scaling)
-        left_values, left, left_method = self._left_vectors(operator, values, balanced,
-                                                            scaling, scale, tolerance,
-                                                            stationary, balance)
-        products = (gram(self.world, balanced, balanced), gram(self.world, left, left),
-                    gram(self.world, left, balanced))
+            if self.world.min(float(scaling.min(initial=1.0))) == 1.0 == self.world.max(
+                    float(scaling.max(initial=1.0))):  # D = I: the same unit vectors
+                balanced, balanced_residuals = local, residuals
+            else:
+                balanced = np.divide(local, scaling[:, None], order="F")
+                balanced /= global_norms(self.world, balanced)[None, :]
+                balanced_residuals = self._residuals(W, values, balanced, scale, scaling)
+            left_values, left, left_method = self._left_vectors(operator, values, balanced,
+                                                                scaling, scale, tolerance,
+                                                                stationary, balance)
+            products = (gram(self.world, balanced, balanced), gram(self.world, left, left),
+                        gram(self.world, left, balanced))
+            del balanced, left
         condition = conditions_from_products(values, left_values, *products,
                                              CLUSTER_FACTOR * scale, chosen)
-        del balanced, left
         values_kept, residuals_kept = values[chosen], residuals[chosen]
         solver = operator.handle.get("shifted") or {
             "shift": None, "setup_seconds": sum(r.get("factor_seconds", 0.0) for r in rounds),
@@ -722,6 +743,7 @@ class SlepcBackend(SlepcAnalysis, Backend):
                   "(MUMPS LDL^T)", "block_size": LANCZOS_BLOCK, "rounds": 0, "converged": 0,
                   "iterations": 0, "solved_columns": 0, "start": "pseudo-random"}
         cert, test_shift = None, None
+        subspace = coefficients = None
         outcome = None
         labels = None
         if n >= COARSE_START_MIN_STATES:
@@ -752,8 +774,8 @@ class SlepcBackend(SlepcAnalysis, Backend):
             log(f"solve: block Lanczos on the symmetric part: {int(keep_new.sum())} of "
                 f"{nev} converged after {search.steps} steps ({search.columns} solved "
                 "columns)")
-            values, vectors, Q, coefficients = self._balanced_ritz(W, scaling, null, found,
-                                                                   start)
+            values, vectors, Q, coefficients, image = self._balanced_ritz(W, scaling, null,
+                                                                          found, start)
             chosen, _ = take_slowest(values, count, grouping_tolerance(values,
                                                                        operator.check.norm1))
             threshold = float(values[chosen].real.min())
@@ -767,8 +789,10 @@ class SlepcBackend(SlepcAnalysis, Backend):
             if test_shift is None or not (float(below.max()) < test_shift < threshold):
                 test_shift = candidate
             keep = values.real > test_shift
-            cert = self._certify_found(W, scaling, values, vectors, Q, coefficients, keep,
-                                       test_shift, factor)
+            cert, subspace = self._certify_found(W, scaling, values, vectors, Q,
+                                                 coefficients, image, keep, test_shift,
+                                                 factor)
+            del Q, image
             if cert.certified or cert.missing <= 0:
                 break
             tight = cert.missing
@@ -781,7 +805,7 @@ class SlepcBackend(SlepcAnalysis, Backend):
         S.destroy()
         record["seconds"] = time.perf_counter() - started
         if outcome is not None:
-            values, vectors, keep, cert = outcome
+            values, vectors, keep, cert, subspace, coefficients = outcome
         if cert is None:
             return {"values": values, "vectors": vectors, "record": record, "certified": False,
                     "certificate": {"kind": "inertia", "note": "NOT CERTIFIED: no gap found"}}
@@ -789,7 +813,9 @@ class SlepcBackend(SlepcAnalysis, Backend):
                       certificate_seconds=cert.seconds)
         return {"values": values[keep] if cert.certified else values,
                 "vectors": vectors[:, keep] if cert.certified else vectors,
-                "record": record, "certified": cert.certified, "certificate": cert.as_dict()}
+                "record": record, "certified": cert.certified, "certificate": cert.as_dict(),
+                # the residuals of the kept modes in k x k numbers (subspace_residuals.py)
+                "subspace": (subspace, coefficients[:, keep]) if cert.certified else None}
 
     def _coarse_started_search(self, W: Any, S: Any, norm_s: float, scaling: np.ndarray,
                                null: np.ndarray, labels: np.ndarray, factor: Any,
@@ -829,10 +855,14 @@ class SlepcBackend(SlepcAnalysis, Backend):
                                "count the coarse start was built for")
             return None
         loose = min(1e2 * floor, 1e-8)  # every mode above t enters the certificate
+        start_vectors, width = coarse.vectors, coarse.vectors.shape[1]
+        coarse.vectors = None  # (the search overwrites and then drops them)
         search = shift_invert_lanczos(
-            self.world, factor.solve, apply_s, coarse.vectors, null[:, None],
+            self.world, factor.solve, apply_s, start_vectors, null[:, None],
             (above_shift, _tight_then_loose(tight, floor, loose, norm_s)), norm_s,
-            max_columns=max(LANCZOS_MAX_COLUMNS, 4 * above_shift), dimension=n)
+            max_columns=max(LANCZOS_MAX_COLUMNS, 4 * above_shift), dimension=n,
+            estimate=False)  # (one or two steps from this start: check every step)
+        del start_vectors
         converged = int(np.sum(search.residuals <= search.tolerances))
         # the work counts (a fallback after this adds its own); what started the search is
         # recorded only when this try is the one kept
@@ -844,49 +874,60 @@ class SlepcBackend(SlepcAnalysis, Backend):
         if not search.converged:
             info["outcome"] = "the search from the coarse start did not converge"
             return None
-        values, vectors, Q, coefficients = self._balanced_ritz(W, scaling, null,
-                                                               search.vectors, start)
+        found, search.vectors = search.vectors, None
+        values, vectors, Q, coefficients, image = self._balanced_ritz(W, scaling, null, found,
+                                                                      start)
+        del found
         keep = values.real > shift
-        cert = self._certify_found(W, scaling, values, vectors, Q, coefficients, keep, shift,
-                                   factor)
+        cert, subspace = self._certify_found(W, scaling, values, vectors, Q, coefficients,
+                                             image, keep, shift, factor)
+        del Q, image
         info["outcome"] = "certified" if cert.certified else "not certified: " + cert.note
         if not cert.certified:
             return None
-        record.update(converged=converged, block_size=int(coarse.vectors.shape[1]),
+        record.update(converged=converged, block_size=int(width),
                       start=f"aggregated S ({coarse.info['coarse_states']} states)")
-        return values, vectors, keep, cert
+        return values, vectors, keep, cert, subspace, coefficients
 
     def _balanced_ritz(self, W: Any, scaling: np.ndarray, null: np.ndarray,
                        found: np.ndarray, start: int) -> tuple:
         """Rayleigh–Ritz of ``Wb = D^-1 W D`` on ``span(null, found)``: ``(values, vectors,
         Q, coefficients)``: the Ritz values (complex; the Rayleigh quotients of the balanced
         Ritz vectors), the Ritz vectors of ``W`` (unit columns, local rows), the orthonormal
-        basis ``Q`` and the coefficients of the balanced Ritz vectors in it."""
+        basis ``Q``, the coefficients of the balanced Ritz vectors in it, and ``Wb Q``."""
         from pipeline.backends.inertia_certificate import orthonormal_basis
 
-        Q = np.asfortranarray(np.column_stack([null, found]))
+        Q = np.empty((found.shape[0], found.shape[1] + 1), order="F")
+        Q[:, 0] = null
+        Q[:, 1:] = found
         products = gram(self.world, Q, Q)
         if np.abs(products - np.eye(Q.shape[1])).max(initial=0.0) > 1e-12:
             Q = orthonormal_basis(self.world, Q)  # (the search's vectors already are)
-        WbQ = apply(W, Q * scaling[:, None]) / scaling[:, None]
+        WbQ = apply(W, np.multiply(Q, scaling[:, None], order="F"))
+        WbQ /= scaling[:, None]
         ritz, coefficients = np.linalg.eig(gram(self.world, Q, WbQ))
-        del WbQ
-        vectors = normalize_columns(self.world, combine(Q, coefficients) * scaling[:, None],
-                                    start)
-        return ritz.astype(np.complex128), vectors, Q, coefficients
+        ritz_vectors = combine(Q, coefficients)
+        ritz_vectors *= scaling[:, None]
+        vectors = normalize_columns(self.world, ritz_vectors, start, overwrite=True)
+        return ritz.astype(np.complex128), vectors, Q, coefficients, WbQ
 
     def _certify_found(self, W: Any, scaling: np.ndarray, values: np.ndarray,
                        vectors: np.ndarray, Q: np.ndarray, coefficients: np.ndarray,
-                       keep: np.ndarray, shift: float, factor: Any):
-        """The inertia certificate of the found modes ``keep`` at ``shift`` on ``factor``."""
+                       image: np.ndarray, keep: np.ndarray, shift: float, factor: Any):
+        """The inertia certificate of the found modes ``keep`` at ``shift`` on ``factor``
+        (``image``: ``Wb Q``, overwritten), and the :class:`SubspaceResiduals` of ``Q``
+        (every residual of the Ritz pairs follows from it)."""
         from pipeline.backends.inertia_certificate import certify_by_inertia
+        from pipeline.backends.subspace_residuals import subspace_residuals
 
+        subspace = subspace_residuals(self.world, W, Q, scaling, image)
         cert = certify_by_inertia(self.world, W, scaling, values[keep], vectors[:, keep],
-                                  shift, factor=factor, span=(Q, coefficients[:, keep]))
+                                  shift, factor=factor, span=(Q, coefficients[:, keep]),
+                                  subspace=subspace)
         log(f"solve: symmetric-part search, certificate at t = {shift:.3e}: "
             f"{cert.above_shift} above t, {cert.captured} in the found span -> "
             + ("certified" if cert.certified else f"{cert.missing} missing"))
-        return cert
+        return cert, subspace
 
     def _rayleigh_quotients(self, W: Any, local: np.ndarray) -> np.ndarray:
         products = apply(W, local)
@@ -897,10 +938,11 @@ class SlepcBackend(SlepcAnalysis, Backend):
         """``||W v - lambda v|| / ||W||_1`` (or of ``D^-1 W D`` with ``D = diag(scaling)``)
         for unit columns."""
         if scaling is None:
-            difference = apply(W, local) - local * values[None, :]
+            difference = apply(W, local)
         else:
-            difference = (apply(W, local * scaling[:, None]) / scaling[:, None]
-                          - local * values[None, :])
+            difference = apply(W, np.multiply(local, scaling[:, None], order="F"))
+            difference /= scaling[:, None]
+        subtract_combination(difference, local, np.diag(values))  # W v - v diag(lambda)
         return global_norms(self.world, difference) / max(scale, 1e-300)
 
     def _balancing(self, values: np.ndarray, local: np.ndarray) -> np.ndarray:
@@ -926,9 +968,11 @@ class SlepcBackend(SlepcAnalysis, Backend):
         on ``W^T`` with transposed solves of the same factorization."""
         W = operator.handle["W"]
         guess = balanced
-        left_residual = (apply_transpose(W, guess / scaling[:, None]) * scaling[:, None]
-                         - guess * values.conj()[None, :])
+        left_residual = apply_transpose(W, np.divide(guess, scaling[:, None], order="F"))
+        left_residual *= scaling[:, None]
+        subtract_combination(left_residual, guess, np.diag(values.conj()))
         norms = global_norms(self.world, left_residual) / max(scale, 1e-300)
+        del left_residual
         if float(norms.max(initial=0.0)) <= max(1e3 * tolerance, 1e-9):
             return values.copy(), guess, "right vectors of D^-1 W D (left residual checked)"
         deflated = int(stationary is not None)
