@@ -132,3 +132,19 @@ def test_subspace_residuals_match_residuals_vector_by_vector():
     R = Wb @ Q - Q @ data.T
     assert data.right_norm == pytest.approx(np.linalg.norm(R), rel=1e-12)
     np.testing.assert_allclose(data.vector_gram(coefficients), x.conj().T @ x, atol=1e-12)
+
+
+def test_page_policy_respects_the_users_numpy_setting(monkeypatch):
+    """numpy's own NUMPY_MADVISE_HUGEPAGE variable decides when set (numpy documentation,
+    reference/global_state.html); otherwise the advice is turned off."""
+    from pipeline.backends import page_policy
+
+    calls = []
+    monkeypatch.setattr(np._core.multiarray, "_set_madvise_hugepage",
+                        lambda enabled: calls.append(enabled) or True)
+    monkeypatch.setenv("NUMPY_MADVISE_HUGEPAGE", "1")
+    assert page_policy.prefer_small_pages() is False and calls == []
+    monkeypatch.setenv("NUMPY_MADVISE_HUGEPAGE", "0")
+    assert page_policy.prefer_small_pages() is True and calls == []
+    monkeypatch.delenv("NUMPY_MADVISE_HUGEPAGE")
+    assert page_policy.prefer_small_pages() is True and calls == [False]

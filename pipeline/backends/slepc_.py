@@ -100,6 +100,9 @@ class SlepcBackend(SlepcAnalysis, Backend):
     block_rows = 1 << 16
 
     def __init__(self) -> None:
+        from pipeline.backends.page_policy import prefer_small_pages
+
+        prefer_small_pages()  # first touch is what memory costs here (page_policy.py)
         self.world = world()
         self.inner = "direct"
         self.preconditioner = "auto"
