@@ -12,9 +12,9 @@ Stewart 1994, Introduction to the Numerical Solution of Markov Chains, ch. 6). S
    an aggregate cut by a rank boundary is split there, so ``P`` needs no communication;
 2. the coarse top eigenvectors (the same shift-and-invert block Lanczos, with a small
    factorization) are prolonged and smoothed by damped Jacobi steps ``x <- x + w D^-1 S x``
-   (``D = |diag S|``, ``w = 2/3``), which remove the jumps at aggregate boundaries
-   (common practice in aggregation multigrid; Vanek, Mandel and Brezina 1996, Computing
-   56, 179);
+   (``D = |diag S|``, ``w = 2/3``; one product with the sparse ``I + w D^-1 S`` each),
+   which remove the jumps at aggregate boundaries (common practice in aggregation
+   multigrid; Vanek, Mandel and Brezina 1996, Computing 56, 179);
 3. Rayleigh–Ritz with ``S`` on their span gives Ritz values that are lower bounds of the
    top eigenvalues of ``S`` one by one (Cauchy interlacing; Parlett 1998, The Symmetric
    Eigenvalue Problem, 10.1), and the start block of the fine search.
@@ -111,14 +111,20 @@ def coarse_start(world: World, S: Any, null: np.ndarray, labels: np.ndarray, wan
     vectors = apply(P, search.vectors)  # prolonged
     P.destroy()
     fine_work = S.createVecs()
+    # the Jacobi step as one sparse matrix J = I + w D^-1 S (S's pattern): one product per
+    # step, between two blocks used in turn
     diagonal = np.abs(S.getDiagonal().getArray(readonly=True))
-    inverse_diagonal = (JACOBI_WEIGHT / np.maximum(diagonal, np.finfo(float).tiny))[:, None]
-    step = np.empty_like(vectors, order="F")
+    smoother = S.copy()
+    row_scaling = fine_work[1]
+    row_scaling.getArray()[:] = JACOBI_WEIGHT / np.maximum(diagonal, np.finfo(float).tiny)
+    smoother.diagonalScale(L=row_scaling)
+    smoother.shift(1.0)
+    other = np.empty_like(vectors, order="F")
     for _ in range(SMOOTHING_STEPS):  # a loop over smoothing steps
-        apply(S, vectors, fine_work, out=step)
-        step *= inverse_diagonal
-        vectors += step
-    del step
+        apply(smoother, vectors, fine_work, out=other)
+        vectors, other = other, vectors
+    del other
+    smoother.destroy()
     subtract_combination(vectors, null[:, None], world.sum(null @ vectors)[None, :])
     basis = orthonormalize(world, vectors, overwrite=True)
     del vectors
