@@ -21,7 +21,8 @@ Layout (README.md, "Store layout", reproduces this)::
                                           method, certified, certificate, group_complete;
                                           slepc: ranks, rounds (nev, ncv, restarts, inner
                                           solves), inner_solver, ksp_type, pc_type,
-                                          peak_memory_mib_per_rank, petsc_options
+                                          peak_memory_mib_per_rank, petsc_options,
+                                          numpy_huge_pages
         spectrum/residuals              float64    [mode]   ||W v - l v|| / ||W||_1
         spectrum/condition              float64    [mode]   eigenvalue condition numbers
                                           (slepc: of the balanced D^-1 W D, D = sqrt(p))

@@ -148,3 +148,13 @@ def test_page_policy_respects_the_users_numpy_setting(monkeypatch):
     assert page_policy.prefer_small_pages() is True and calls == []
     monkeypatch.delenv("NUMPY_MADVISE_HUGEPAGE")
     assert page_policy.prefer_small_pages() is True and calls == [False]
+
+
+def test_page_policy_is_recorded_in_the_provenance():
+    from pipeline.models.lattice import LatticeWalk
+
+    backend = slepc_backend.SlepcBackend()
+    operator = backend.assemble(LatticeWalk((12,), ("periodic",), (1.0,), (0.5,)))
+    modes = backend.slowest_modes(operator, 3, method="shift-invert")
+    assert modes.info["numpy_huge_pages"] == ("off" if backend.small_pages
+                                              else "numpy's default")

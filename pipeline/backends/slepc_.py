@@ -102,7 +102,8 @@ class SlepcBackend(SlepcAnalysis, Backend):
     def __init__(self) -> None:
         from pipeline.backends.page_policy import prefer_small_pages
 
-        prefer_small_pages()  # first touch is what memory costs here (page_policy.py)
+        # first touch is what memory costs here (page_policy.py); recorded in provenance
+        self.small_pages = prefer_small_pages()
         self.world = world()
         self.inner = "direct"
         self.preconditioner = "auto"
@@ -1095,7 +1096,8 @@ class SlepcBackend(SlepcAnalysis, Backend):
         peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0
         return {"backend": self.name, "ranks": self.world.size,
                 "peak_memory_mib_per_rank": [round(v, 1) for v in self.world.allgather(peak)],
-                "petsc_options": {str(k): str(v) for k, v in self.options.items()}}
+                "petsc_options": {str(k): str(v) for k, v in self.options.items()},
+                "numpy_huge_pages": "off" if self.small_pages else "numpy's default"}
 
 
 def _tight_then_loose(tight: int, floor: float, loose: float,
