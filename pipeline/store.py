@@ -243,12 +243,21 @@ class Store:
                              + (", ".join(self.runs()) or "none"))
         return dict(self._zarr_group(run).attrs)
 
+    def run_is_empty(self, run: str) -> bool:
+        """True for a run group with no attributes and nothing inside (a creation that was
+        cut short: it holds no results)."""
+        group = self._zarr_group(run)
+        return not dict(group.attrs) and not any(True for _ in group.keys())
+
     def open_run(self, run: str, attrs: dict[str, Any]) -> None:
-        """Create the run group if needed and merge ``attrs`` into its attributes."""
+        """Create the run group if needed and merge ``attrs`` into its attributes (a new
+        group is written with them in one metadata write, so an interrupted creation never
+        leaves a run without them)."""
 
         def create() -> None:
             if not self.has_run(run):
-                self.root.create_group(run)
+                self.root.create_group(run, attributes=_jsonable(attrs))
+                return
             self._zarr_group(run).attrs.update(_jsonable(attrs))
 
         self.world.on_root(create)

@@ -140,7 +140,8 @@ def sweep_tasks(config: Config, store: Store) -> list[SweepTask]:
     for task in tasks:
         if store.has_run(task.run):
             owner = store.run_attrs(task.run).get("sweep", {}).get("name")
-            if owner != config.sweep.name:
+            # an empty group is a creation cut short: taking it over loses nothing
+            if owner != config.sweep.name and not store.run_is_empty(task.run):
                 raise ConfigError(f"sweep.name: run {task.run!r} already exists in the store "
                                   f"and is not part of sweep {config.sweep.name!r}; fix: choose "
                                   "another sweep.name")

@@ -86,6 +86,27 @@ def test_grid_times_zip_expansion(tmp_path):
     assert [t.run for t in again] == [t.run for t in tasks]
 
 
+def test_a_run_cut_short_at_creation_is_taken_over_but_foreign_runs_are_refused(tmp_path):
+    """A kill between creating a task's run group and writing its attributes (stores made
+    before the group was written with them at once) leaves an empty group: the resumed
+    sweep takes it over, while a run holding anything of another owner is still refused."""
+    from pipeline.sweep import sweep_tasks
+
+    config = load_config(sweep_config(tmp_path, lines='grid = { "model.size" = [10, 12] }'))
+    store = Store(tmp_path / "s.zarr", create=True)
+    first, second = (task.run for task in expand_sweep(config))
+    store.root.create_group(first)  # created, attributes never written
+    assert store.run_is_empty(first)
+    assert [task.run for task in sweep_tasks(config, store)] == [first, second]
+    store.open_run(second, {"note": "someone else's run"})
+    assert not store.run_is_empty(second)
+    with pytest.raises(ConfigError, match="not part of sweep"):
+        sweep_tasks(config, store)
+    # a new group is written with its attributes in one metadata write
+    store.open_run("fresh", {"sweep": {"name": "ringsweep"}})
+    assert store.run_attrs("fresh")["sweep"]["name"] == "ringsweep"
+
+
 def test_indexed_path(tmp_path):
     lines = 'grid = { "model.forward[0]" = [0.5, 1.5] }'
     path = sweep_config(tmp_path, lines=lines)
