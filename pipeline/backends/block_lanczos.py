@@ -196,10 +196,7 @@ class _Basis:
 
     def gram(self, world: World, other: np.ndarray) -> np.ndarray:
         """``V^T other`` (``[size, k]``), one reduction for all blocks."""
-        if not self.blocks:
-            return np.zeros((0, other.shape[1]))
-        return world.sum(np.ascontiguousarray(np.vstack([block.T @ other
-                                                         for block in self.blocks])))
+        return _stacked_gram(world, self.blocks, other)
 
     def combine(self, coefficients: np.ndarray) -> np.ndarray:
         """``V @ coefficients`` (column-major), accumulated block by block in place."""
@@ -213,6 +210,13 @@ class _Basis:
                 add_combination(out, block, part)
             offset += block.shape[1]
         return out
+
+
+def _stacked_gram(world: World, spaces: list[np.ndarray], block: np.ndarray) -> np.ndarray:
+    """``[S_1 ... S_j]^T block`` for real column blocks ``S_i``, in one reduction."""
+    if not spaces:
+        return np.zeros((0, block.shape[1]))
+    return world.sum(np.ascontiguousarray(np.vstack([space.T @ block for space in spaces])))
 
 
 def _project(world: World, block: np.ndarray, deflation: np.ndarray,
@@ -229,8 +233,7 @@ def _project(world: World, block: np.ndarray, deflation: np.ndarray,
     before = global_norms(world, block)
     for _ in range(2):
         # all coefficients from the same block, in one reduction, then one update per space
-        coefficients = world.sum(np.ascontiguousarray(np.vstack([space.T @ block
-                                                                 for space in spaces])))
+        coefficients = _stacked_gram(world, spaces, block)
         offset = 0
         for space in spaces:
             width = space.shape[1]
